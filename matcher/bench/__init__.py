@@ -1,0 +1,1 @@
+"""Benchmarks behind ``matcher bench``; one module each, with ``register(subparsers)``."""
