@@ -15,6 +15,7 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 FIXTURES = ROOT / "fixtures"
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+pytest_plugins = ["kafka_broker"]  # the real Kafka broker fixture and its report hook
 
 
 @pytest.fixture
