@@ -73,7 +73,7 @@ class MessageError(InputError):
         self.problem = problem
         who = f" {message_id}" if message_id else ""
         where = f" {field}" if field else ""
-        super().__init__(f"{codec} message{who}:{where} {problem}".replace(": ", ": ", 1))
+        super().__init__(f"{codec} message{who}:{where} {problem}")
 
 
 class CatalogError(InputError):
