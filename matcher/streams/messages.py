@@ -182,9 +182,9 @@ class _Checker:
         if not math.isfinite(v):
             self.fail(name, f"must be finite, got {v!r}")
         if lo is not None and (v <= lo if lo_open else v < lo):
-            self.fail(name, f"={v!r} must be {'>' if lo_open else '>='} {lo!r}")
+            self.fail(name, f"must be {'>' if lo_open else '>='} {lo!r} (got {v!r})")
         if hi is not None and v > hi:
-            self.fail(name, f"={v!r} must be <= {hi!r}")
+            self.fail(name, f"must be <= {hi!r} (got {v!r})")
         return v
 
     def time(self, name: str, *, required: bool) -> tuple[float | None, str | None]:
