@@ -48,9 +48,11 @@ trap 'rm -rf "$tmp"' EXIT
 
 echo "Kafka broker jars: fetching into $lib"
 start=$SECONDS
-(cd "$here" && mvn -B -q -Dstyle.color=never \
+# Debian's Maven 3.8.7 prints bare colour resets even with -B -q: strip them
+# (pipefail keeps Maven's exit status).
+(cd "$here" && mvn -B -q \
     org.apache.maven.plugins:maven-dependency-plugin:3.6.1:copy-dependencies \
-    -DincludeScope=runtime -DoutputDirectory="$tmp") \
+    -DincludeScope=runtime -DoutputDirectory="$tmp") 2>&1 | sed 's/\x1b\[[0-9;]*m//g' \
     || die "Maven could not fetch the Kafka broker jars (see its output above)"
 
 # The jars the broker cannot start without: fail here, not at broker start.
