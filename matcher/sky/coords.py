@@ -24,11 +24,11 @@ def check_radec(ra_deg, dec_deg, *, what: str = "position"):
     bad_ra = ~(np.isfinite(ra) & (ra >= 0.0) & (ra <= 360.0))
     if bad_ra.any():
         i = int(np.flatnonzero(bad_ra.ravel())[0])
-        raise InputError(f"{what} #{i}: ra_deg={ra.ravel()[i]!r} is outside [0, 360]")
+        raise InputError(f"{what} #{i}: ra_deg={float(ra.ravel()[i])!r} is outside [0, 360]")
     bad_dec = ~(np.isfinite(dec) & (dec >= -90.0) & (dec <= 90.0))
     if bad_dec.any():
         i = int(np.flatnonzero(bad_dec.ravel())[0])
-        raise InputError(f"{what} #{i}: dec_deg={dec.ravel()[i]!r} is outside [-90, 90]")
+        raise InputError(f"{what} #{i}: dec_deg={float(dec.ravel()[i])!r} is outside [-90, 90]")
     return ra, dec
 
 

@@ -140,7 +140,7 @@ def parameters_from_moments(mean, std, *, strict: bool = True):
     ok = np.isfinite(ratio) & (ratio > 0) & (ratio < limit) & (std > 0)
     if strict and not np.all(ok):
         bad = np.flatnonzero(~ok.ravel())[0]
-        m, s = mean.ravel()[bad], std.ravel()[bad]
+        m, s = float(mean.ravel()[bad]), float(std.ravel()[bad])
         raise ValueError(
             f"distance mean={m!r} Mpc, std={s!r} Mpc cannot be represented by the ansatz: "
             f"need mean > 0, std > 0 and std/mean < {limit:.6f} (the 1/sqrt(3) limit)"

@@ -184,6 +184,11 @@ def synthetic_skymap(
     if not components:
         raise ValueError("a synthetic map needs at least one component")
     density = _mixture(components)
+    # Start fine enough that no component can hide between pixel centres: the side of a
+    # starting pixel (≈ 1.0233 rad / 2**order) is at most the smallest component's scale.
+    scales = [1.0 / np.sqrt(c.kappa) if isinstance(c, Blob) else np.radians(c.width_deg) for c in components]
+    needed = int(np.ceil(np.log2(1.0233 / max(min(scales), 1e-9))))
+    min_order = int(min(max(min_order, needed), max_order))
     uniq, dens = _rasterize(density, min_order=min_order, max_order=max_order,
                             pixel_prob=pixel_prob, supersample=supersample)
     # The cell averages integrate the mixture to ~1e-4; normalize exactly here so the
