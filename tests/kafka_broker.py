@@ -19,6 +19,7 @@ from __future__ import annotations
 import atexit
 import base64
 import os
+import shutil
 import signal
 import socket
 import subprocess
@@ -524,8 +525,6 @@ class KafkaBroker:
 
 
 def _remove_tree(path: Path) -> None:
-    import shutil
-
     shutil.rmtree(path, ignore_errors=True)
 
 
@@ -546,8 +545,8 @@ def kafka_broker():
     tests after them find it running; ports and data are kept across restarts.
     """
     broker = KafkaBroker()
-    broker.start()
     try:
+        broker.start()
         yield broker
     finally:
         broker.close()

@@ -174,9 +174,11 @@ def test_kcat_produces_and_reads_back(kafka_broker):
 
 def test_missing_jars_fail_with_the_fetch_command(tmp_path):
     broker = KafkaBroker(lib_dir=tmp_path / "no-jars")
-    with pytest.raises(BrokerError, match="tests/kafka/fetch.sh"):
-        broker.start()
-    broker.close()
+    try:
+        with pytest.raises(BrokerError, match="tests/kafka/fetch.sh"):
+            broker.start()
+    finally:
+        broker.close()
 
 
 def test_bad_configuration_raises_with_the_broker_log():
