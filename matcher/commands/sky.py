@@ -193,22 +193,39 @@ def _at(args) -> int:
         return 0
     from rich.table import Table
 
+    if single:
+        r = rows[0]
+        t = Table(title=f"Position on {args.map}", header_style="bold")
+        t.add_column("quantity")
+        t.add_column("value", justify="right")
+        t.add_row("RA, Dec (deg)", f"{r['ra_deg']:.5f}, {r['dec_deg']:.5f}")
+        t.add_row("density", f"{r['density_per_sr']:.5g} sr⁻¹")
+        t.add_row("credible level (searched probability)", f"{r['credible_level']:.5f}")
+        t.add_row("searched area", f"{r['searched_area_deg2']:,.3f} deg²")
+        if with_err:
+            t.add_row(f"overlap with σ = {r['err_deg']:g}° error", f"{r['overlap_per_sr']:.5g} sr⁻¹")
+        if m.has_distance:
+            d = r["distance_mpc"]
+            t.add_row("distance along the line of sight",
+                      "—" if not np.isfinite(d["mean"]) else f"{d['mean']:.1f} ± {d['std']:.1f} Mpc")
+        console().print(t)
+        return 0
     t = Table(title=f"Positions on {args.map}", header_style="bold")
-    for col in ("RA (deg)", "Dec (deg)", "density (sr⁻¹)", "credible level", "searched area (deg²)"):
+    for col in ("RA", "Dec", "ρ (sr⁻¹)", "level", "area (deg²)"):
         t.add_column(col, justify="right")
     if with_err:
         t.add_column("σ (deg)", justify="right")
         t.add_column("overlap (sr⁻¹)", justify="right")
     if m.has_distance:
-        t.add_column("distance (Mpc)", justify="right")
+        t.add_column("D (Mpc)", justify="right")
     for r in rows:
-        cells = [f"{r['ra_deg']:.4f}", f"{r['dec_deg']:.4f}", f"{r['density_per_sr']:.4g}",
-                 f"{r['credible_level']:.4f}", f"{r['searched_area_deg2']:,.2f}"]
+        cells = [f"{r['ra_deg']:.3f}", f"{r['dec_deg']:.3f}", f"{r['density_per_sr']:.3g}",
+                 f"{r['credible_level']:.3f}", f"{r['searched_area_deg2']:,.1f}"]
         if with_err:
-            cells += [f"{r['err_deg']:.4g}", f"{r['overlap_per_sr']:.4g}"]
+            cells += [f"{r['err_deg']:.3g}", f"{r['overlap_per_sr']:.3g}"]
         if m.has_distance:
             d = r["distance_mpc"]
-            cells.append("—" if not np.isfinite(d["mean"]) else f"{d['mean']:.1f} ± {d['std']:.1f}")
+            cells.append("—" if not np.isfinite(d["mean"]) else f"{d['mean']:.0f}±{d['std']:.0f}")
         t.add_row(*cells)
     console().print(t)
     return 0
