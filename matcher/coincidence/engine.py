@@ -226,7 +226,7 @@ def score_reports(
     if n == 0:
         e = np.zeros(0)
         s = np.zeros(0, dtype=str)
-        return ScoreTable(alert.event_id, alert.revision, s, s, np.zeros(0, bool), *([e] * 13), s)
+        return ScoreTable(alert.event_id, alert.revision, s, s, np.zeros(0, bool), *([e] * 14), s)
 
     cols = _class_columns(classes, batch.klass, batch.transient_id)
     t_g = float(alert.merger_time)
@@ -259,13 +259,13 @@ def score_reports(
     odds[idx] = posterior_odds(prior[idx], I[idx], T[idx], D[idx], cols["rate"][idx])
     p = association_probabilities(odds, batch.klass)
 
-    fap = np.ones(n)
+    mu_bg = np.full(n, np.inf)
     score = I * T * D
     live = inw & (score > 0)
     if np.any(live):
-        fap[live] = false_association_probability(
-            cols["rate"][live] * _background_measure(skymap, batch, live, score, I, T, L, W, sigma, use_d, s,
-                                                     cols["reach"], maps))
+        mu_bg[live] = cols["rate"][live] * _background_measure(skymap, batch, live, score, I, T, L, W, sigma,
+                                                              use_d, s, cols["reach"], maps)
+    fap = false_association_probability(mu_bg)
 
     jf = np.full(n, np.nan)
     if alert.far_per_year is not None:
@@ -276,7 +276,7 @@ def score_reports(
     err_used = np.where(use_d, s, np.nan)
     src_names = np.asarray(DISTANCE_SOURCE_NAMES)[np.where(use_d, src, 0)]
     return ScoreTable(
-        alert.event_id, alert.revision, batch.transient_id, batch.klass, inw, odds, p, fap, area, level, dt,
+        alert.event_id, alert.revision, batch.transient_id, batch.klass, inw, odds, p, fap, mu_bg, area, level, dt,
         I, T, D, prior, jf, dist_used, err_used, src_names,
     )
 

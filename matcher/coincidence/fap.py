@@ -45,9 +45,8 @@ conservative on ties.
   denominator of ``D`` itself — and ``y = ρ_gw(Ω) D(Ω, d)``. Tables are built
   at error nodes ``s_d = 2^(k/4)`` Mpc; a candidate between nodes interpolates
   ``ln μ`` linearly in ``ln s_d``. Pixels beyond the densest
-  :data:`MAX_DISTANCE_PIXELS` (or the top 99.99 % of probability) get one cell
-  each with ``D = 1``: they only matter for scores so low that the FAP is near
-  its maximum.
+  :data:`MAX_DISTANCE_PIXELS` get :data:`COARSE_DISTANCE_BINS` distance bins
+  instead of :data:`DISTANCE_BINS` (they matter only for low scores).
 * A Gaussian position error ``σ >= 1°`` smooths the statistic: the cells are
   pixels of a flat grid (pixel ≲ σ, order ≤ 6) with ``y`` the Gaussian overlap
   at their centres, tabulated at nodes ``σ = 2^(k/4)`` deg and interpolated.
@@ -89,14 +88,16 @@ __all__ = [
     "SMOOTH_MIN_SIGMA_DEG",
     "MAX_DISTANCE_PIXELS",
     "DISTANCE_BINS",
+    "COARSE_DISTANCE_BINS",
 ]
 
 #: Gaussian errors at least this large (deg) are ranked on a smoothed map.
 SMOOTH_MIN_SIGMA_DEG = 1.0
 #: Pixels resolved in distance in a distance table (the densest ones).
 MAX_DISTANCE_PIXELS = 20000
-#: Distance bins of a distance table.
+#: Distance bins of a distance table (densest pixels / the others).
 DISTANCE_BINS = 160
+COARSE_DISTANCE_BINS = 24
 _TIE = 1.0 - 1e-12  # a candidate ties with its own cell despite float rounding
 _Y_FLOOR = 1e-280
 
@@ -202,24 +203,25 @@ def distance_table(skymap: SkyMap, sigma_d_mpc: float, reach_mpc: float) -> Back
     R = float(reach_mpc)
 
     def build():
-        edges = np.linspace(0.0, R + 6.0 * s, DISTANCE_BINS + 1)
-        d = 0.5 * (edges[1:] + edges[:-1])
-        pd = background_likelihood_overlap(R, d, s) * np.diff(edges)
+        # The densest pixels get fine distance bins, the rest coarse ones (they only
+        # matter for low scores); every pixel keeps its own D, so the statistic of a
+        # cell is the one a report there would get.
         rank = np.argsort(-skymap.probdensity, kind="stable")
-        cum = np.cumsum(skymap.prob[rank])
-        n_res = min(MAX_DISTANCE_PIXELS, int(np.searchsorted(cum, 0.9999 * cum[-1])) + 1)
-        res, rest = rank[:n_res], rank[n_res:]
         ys, ws = [], []
-        mu, sg, nm = skymap.distmu[res], skymap.distsigma[res], skymap.distnorm[res]
-        rho, area = skymap.probdensity[res], skymap.area_sr[res]
-        chunk = max(1, 2_000_000 // DISTANCE_BINS)
-        for i in range(0, res.size, chunk):
-            sl = slice(i, i + chunk)
-            D = distance_factor(mu[sl, None], sg[sl, None], nm[sl, None], d[None, :], s, R)
-            ys.append((rho[sl, None] * D).ravel())
-            ws.append((area[sl, None] * pd[None, :]).ravel())
-        ys.append(skymap.probdensity[rest])
-        ws.append(skymap.area_sr[rest] * pd.sum())
+        for part, nb in ((rank[:MAX_DISTANCE_PIXELS], DISTANCE_BINS), (rank[MAX_DISTANCE_PIXELS:], COARSE_DISTANCE_BINS)):
+            if part.size == 0:
+                continue
+            edges = np.linspace(0.0, R + 6.0 * s, nb + 1)
+            d = 0.5 * (edges[1:] + edges[:-1])
+            pd = background_likelihood_overlap(R, d, s) * np.diff(edges)
+            mu, sg, nm = skymap.distmu[part], skymap.distsigma[part], skymap.distnorm[part]
+            rho, area = skymap.probdensity[part], skymap.area_sr[part]
+            chunk = max(1, 2_000_000 // nb)
+            for i in range(0, part.size, chunk):
+                sl = slice(i, i + chunk)
+                D = distance_factor(mu[sl, None], sg[sl, None], nm[sl, None], d[None, :], s, R)
+                ys.append((rho[sl, None] * D).ravel())
+                ws.append((area[sl, None] * pd[None, :]).ravel())
         return BackgroundTable.from_cells(np.concatenate(ys), np.concatenate(ws))
 
     return _cached(skymap, ("dist", s, R), build)

@@ -29,7 +29,10 @@ class ScoreTable:
     p_assoc : ndarray
         ``O_i / (1 + Σ_j O_j)`` over the reports of the same class in this table.
     fap : ndarray
-        False-association probability.
+        False-association probability, ``1 - exp(-background_expected)``.
+    background_expected : ndarray
+        ``μ``: expected number of unrelated reports of the class scoring at least
+        as high (0 … inf); keeps full precision where ``fap`` rounds to 1.
     searched_area_deg2 : ndarray, deg²
     credible_level : ndarray
         Searched probability at the report position.
@@ -56,6 +59,7 @@ class ScoreTable:
     odds: np.ndarray
     p_assoc: np.ndarray
     fap: np.ndarray
+    background_expected: np.ndarray
     searched_area_deg2: np.ndarray
     credible_level: np.ndarray
     dt_s: np.ndarray
