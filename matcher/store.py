@@ -1,0 +1,719 @@
+"""SQLite state: the service's source of truth across restarts.
+
+One file holds every accepted message (raw bytes and where they came from), the
+localizations they referenced (exact bytes), GW events and all their revisions,
+transients, results under deterministic keys, quarantined input (raw bytes,
+byte-identical, with origin and reason), the sources' positions, and an outbox of
+outputs to publish.
+
+Durability: WAL journal with ``synchronous=FULL`` (with NORMAL, a committed
+transaction can be rolled back by a power loss), and one ``BEGIN IMMEDIATE``
+transaction per batch. The service loop does, in this order::
+
+    items = source.poll()                      # raw bytes + origin + position
+    decoded = [decode(item) for item in items] # message, or a reason to quarantine
+    with store.transaction() as tx:            # one transaction per batch:
+        tx.add_message(...) / tx.quarantine(...)    messages and state
+        tx.put_result(...)                          results (+ outbox rows)
+        tx.set_positions(source.name, positions_of(items))
+    source.commit(settled)                     # only now: move files, commit offsets
+    publish_pending(store, sink)               # outbox → sinks, then mark sent
+
+A crash anywhere re-delivers at most the last batch; the dedup key (SHA-256 of the
+origin and the raw bytes) makes re-delivered messages no-ops, and results are
+upserts under ``(event_id, revision, transient_id)``, so nothing is lost or doubled.
+
+Lifecycle rules the store enforces itself, so no caller can break them:
+
+- a GW revision older than the event's current one is stored but does not replace it;
+- a second message with an already stored ``(event_id, revision)`` is kept as a message
+  but changes nothing;
+- a result of a withdrawn event is stored as ``withdrawn``; a result of a revision older
+  than the current one as ``superseded``.
+
+Times: ``received_at`` and ``stored_at`` are Unix seconds; event and transient times
+are GPS seconds (as in :mod:`matcher.streams.messages`).
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import math
+import os
+import sqlite3
+import time
+import urllib.parse
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import Any, Iterator, Mapping, Sequence
+
+from matcher.errors import InputError
+from matcher.streams.localization import LoadedLocalization
+from matcher.streams.messages import GWAlert, Localization, Message, TransientReport
+from matcher.streams.raw import RawItem
+
+__all__ = [
+    "Store",
+    "Transaction",
+    "StoreError",
+    "StoredMessage",
+    "StoredRevision",
+    "StoredTransient",
+    "ResultRow",
+    "QuarantineRow",
+    "OutboxRow",
+    "result_key",
+    "RESULT_STATUSES",
+    "SCHEMA_VERSION",
+]
+
+SCHEMA_VERSION = 1
+RESULT_STATUSES = ("current", "superseded", "withdrawn")
+
+
+class StoreError(InputError):
+    """The store file cannot be used (wrong schema version, not SQLite, WAL unavailable)."""
+
+
+def result_key(event_id: str, revision: int, transient_id: str) -> str:
+    """The deterministic key of a result: ``EVENT/REVISION/TRANSIENT`` with ids percent-encoded.
+
+    Percent-encoding ``/`` and ``%`` keeps the key unambiguous whatever the ids contain.
+
+    Examples
+    --------
+    >>> result_key("S260101a", 2, "AT 2026abc")
+    'S260101a/2/AT%202026abc'
+    """
+    return f"{urllib.parse.quote(event_id, safe='')}/{int(revision)}/{urllib.parse.quote(transient_id, safe='')}"
+
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (name TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS messages (
+    id INTEGER PRIMARY KEY,
+    dedup BLOB NOT NULL UNIQUE,
+    source TEXT NOT NULL, origin_kind TEXT NOT NULL, origin_where TEXT NOT NULL,
+    origin_part INTEGER, origin_offset INTEGER, origin TEXT NOT NULL,
+    codec TEXT NOT NULL, received_at REAL NOT NULL, stored_at REAL NOT NULL,
+    kind TEXT NOT NULL, message_key TEXT NOT NULL,
+    raw BLOB NOT NULL
+);
+CREATE TABLE IF NOT EXISTS localizations (
+    sha256 TEXT PRIMARY KEY, data BLOB NOT NULL, nbytes INTEGER NOT NULL,
+    where_from TEXT NOT NULL, stored_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS events (
+    event_id TEXT PRIMARY KEY, revision INTEGER NOT NULL, state TEXT NOT NULL,
+    merger_time REAL NOT NULL, message_id INTEGER NOT NULL REFERENCES messages(id),
+    first_seen REAL NOT NULL, updated_at REAL NOT NULL, expires_at REAL
+);
+CREATE TABLE IF NOT EXISTS revisions (
+    event_id TEXT NOT NULL, revision INTEGER NOT NULL, message_id INTEGER NOT NULL REFERENCES messages(id),
+    state TEXT NOT NULL, merger_time REAL NOT NULL, merger_time_iso TEXT NOT NULL,
+    far_per_year REAL, p_astro REAL, source_probs TEXT,
+    localization_sha TEXT REFERENCES localizations(sha256), localization_ref TEXT,
+    extra TEXT NOT NULL, received_at REAL NOT NULL,
+    PRIMARY KEY (event_id, revision)
+);
+CREATE TABLE IF NOT EXISTS transients (
+    transient_id TEXT PRIMARY KEY, message_id INTEGER NOT NULL REFERENCES messages(id),
+    class TEXT NOT NULL, ra_deg REAL NOT NULL, dec_deg REAL NOT NULL, pos_err_deg REAL,
+    time REAL NOT NULL, time_iso TEXT NOT NULL, last_nondetection REAL,
+    redshift REAL, redshift_err REAL, distance_mpc REAL, distance_err_mpc REAL,
+    localization_sha TEXT REFERENCES localizations(sha256), localization_ref TEXT,
+    extra TEXT NOT NULL, content TEXT NOT NULL, reports INTEGER NOT NULL, received_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS transients_time ON transients(time);
+CREATE TABLE IF NOT EXISTS results (
+    key TEXT PRIMARY KEY, event_id TEXT NOT NULL, revision INTEGER NOT NULL, transient_id TEXT NOT NULL,
+    status TEXT NOT NULL, class TEXT, p_assoc REAL, fap REAL, odds REAL, rank INTEGER,
+    record TEXT NOT NULL, seq INTEGER NOT NULL, updated_at REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS results_event ON results(event_id, revision);
+CREATE INDEX IF NOT EXISTS results_transient ON results(transient_id);
+CREATE TABLE IF NOT EXISTS quarantine (
+    id INTEGER PRIMARY KEY,
+    dedup BLOB NOT NULL UNIQUE,
+    source TEXT NOT NULL, origin_kind TEXT NOT NULL, origin_where TEXT NOT NULL,
+    origin_part INTEGER, origin_offset INTEGER, origin TEXT NOT NULL,
+    codec TEXT NOT NULL, field TEXT, reason TEXT NOT NULL,
+    received_at REAL NOT NULL, stored_at REAL NOT NULL,
+    size INTEGER NOT NULL, truncated INTEGER NOT NULL, raw BLOB NOT NULL
+);
+CREATE TABLE IF NOT EXISTS positions (
+    source TEXT NOT NULL, stream TEXT NOT NULL, token TEXT NOT NULL, updated_at REAL NOT NULL,
+    PRIMARY KEY (source, stream)
+);
+CREATE TABLE IF NOT EXISTS outbox (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT, kind TEXT NOT NULL, key TEXT NOT NULL,
+    payload TEXT NOT NULL, created_at REAL NOT NULL
+);
+CREATE TABLE IF NOT EXISTS sink_cursors (
+    sink TEXT PRIMARY KEY, sent_seq INTEGER NOT NULL, updated_at REAL NOT NULL
+);
+"""
+
+
+@dataclass(frozen=True)
+class StoredMessage:
+    """What storing an accepted message did.
+
+    Attributes
+    ----------
+    message_id : int
+    kind : str
+        ``gw_alert`` or ``transient``.
+    effect : str
+        For GW alerts: ``new_event`` (first revision seen), ``newer`` (became the current
+        revision), ``older`` (kept, not current), ``same_revision`` (that revision was already
+        stored from another message; kept as a message, changes nothing). For transients:
+        ``new``, ``updated`` (a later report of a known id, different content; it replaces
+        the stored one), ``same`` (identical content).
+    previous_revision : int or None
+        The event's current revision before this message (GW alerts).
+    """
+
+    message_id: int
+    kind: str
+    effect: str
+    previous_revision: int | None = None
+
+    @property
+    def changes_state(self) -> bool:
+        return self.effect in ("new_event", "newer", "new", "updated")
+
+
+@dataclass(frozen=True)
+class StoredRevision:
+    """A stored GW revision, rebuilt into a :class:`GWAlert`.
+
+    Attributes
+    ----------
+    alert : GWAlert
+    localization_sha : str or None
+        SHA-256 of the localization bytes held in the store (:meth:`Store.localization_data`).
+    message_id : int
+    is_current : bool
+    event_state : str
+        The state of the event's current revision.
+    expires_at : float or None, GPS s
+    """
+
+    alert: GWAlert
+    localization_sha: str | None
+    message_id: int
+    is_current: bool
+    event_state: str
+    expires_at: float | None
+
+
+@dataclass(frozen=True)
+class StoredTransient:
+    """A stored transient, rebuilt into a :class:`TransientReport`, and how often it was reported."""
+
+    report: TransientReport
+    localization_sha: str | None
+    message_id: int
+    reports: int
+
+
+@dataclass(frozen=True)
+class ResultRow:
+    """A stored result; ``record`` is the full output record (it includes ``key`` and ``status``)."""
+
+    key: str
+    event_id: str
+    revision: int
+    transient_id: str
+    status: str
+    record: Mapping[str, Any]
+    seq: int
+
+
+@dataclass(frozen=True)
+class QuarantineRow:
+    """Rejected input: the exact bytes, where they came from, and why."""
+
+    id: int
+    source: str
+    origin: str
+    origin_kind: str
+    origin_where: str
+    origin_part: int | None
+    origin_offset: int | None
+    codec: str
+    field: str | None
+    reason: str
+    received_at: float
+    size: int
+    truncated: bool
+    raw: bytes
+
+
+@dataclass(frozen=True)
+class OutboxRow:
+    """One output to publish: ``seq`` increases with every change; ``payload`` is JSON text."""
+
+    seq: int
+    kind: str
+    key: str
+    payload: str
+
+
+def _jsonable(value: Any) -> Any:
+    """Plain JSON values: numpy scalars and arrays unwrapped, non-finite floats as null."""
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if hasattr(value, "tolist") and callable(value.tolist):  # numpy scalars and arrays
+        return _jsonable(value.tolist())
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _dumps(value: Any) -> str:
+    return json.dumps(_jsonable(value), sort_keys=True, separators=(",", ":"), allow_nan=False)
+
+
+def _loc_ref(loc: Localization | None) -> str | None:
+    if loc is None:
+        return None
+    if loc.path is not None:
+        return json.dumps({"path": loc.path, "base_dir": loc.base_dir})
+    if loc.url is not None:
+        return json.dumps({"url": loc.url})
+    return json.dumps({"fits_base64": True})
+
+
+def _loc_from_ref(ref: str | None, data: bytes | None) -> Localization | None:
+    if ref is None:
+        return None
+    d = json.loads(ref)
+    if "path" in d:
+        return Localization(path=d["path"], base_dir=d.get("base_dir"))
+    if "url" in d:
+        return Localization(url=d["url"])
+    return Localization(fits_base64=base64.b64encode(data).decode("ascii") if data is not None else None)
+
+
+class Transaction:
+    """Writes inside one ``BEGIN IMMEDIATE`` transaction; get one from :meth:`Store.transaction`."""
+
+    def __init__(self, store: Store):
+        self._store = store
+        self._db = store._db
+        self._now = time.time()
+
+    # ----------------------------------------------------------------- input
+    def _origin_columns(self, item: RawItem):
+        o = item.origin
+        return (o.source, o.kind, o.where, o.part, o.offset, str(o))
+
+    def _put_localization(self, loc: LoadedLocalization | None) -> str | None:
+        if loc is None:
+            return None
+        self._db.execute("INSERT OR IGNORE INTO localizations VALUES (?, ?, ?, ?, ?)",
+                         (loc.sha256, loc.data, len(loc.data), loc.where, self._now))
+        return loc.sha256
+
+    def add_message(self, item: RawItem, codec: str, message: Message,
+                    localization: LoadedLocalization | None = None) -> StoredMessage | None:
+        """Store an accepted message and apply it to the event or transient state.
+
+        Parameters
+        ----------
+        item : RawItem
+            Its bytes and origin are stored as they are.
+        codec : str
+            The codec that decoded it.
+        message : GWAlert or TransientReport
+        localization : LoadedLocalization, optional
+            The message's loaded localization (its bytes are stored once, by SHA-256).
+
+        Returns
+        -------
+        StoredMessage or None
+            ``None`` when the same bytes from the same origin are already stored (a re-delivery).
+        """
+        if isinstance(message, GWAlert):
+            kind, mkey = "gw_alert", f"{message.event_id}#{message.revision}"
+        elif isinstance(message, TransientReport):
+            kind, mkey = "transient", message.transient_id
+        else:
+            raise TypeError(f"expected a GWAlert or TransientReport, got {type(message).__name__}")
+        cur = self._db.execute(
+            "INSERT OR IGNORE INTO messages (dedup, source, origin_kind, origin_where, origin_part, origin_offset,"
+            " origin, codec, received_at, stored_at, kind, message_key, raw) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+            (item.dedup_key, *self._origin_columns(item), codec, item.received_at, self._now, kind, mkey, item.data))
+        if cur.rowcount == 0:
+            return None
+        mid = cur.lastrowid
+        sha = self._put_localization(localization)
+        if kind == "gw_alert":
+            return self._apply_alert(mid, message, sha, item.received_at)
+        return self._apply_transient(mid, message, sha, item.received_at)
+
+    def _apply_alert(self, mid: int, a: GWAlert, sha: str | None, received_at: float) -> StoredMessage:
+        db = self._db
+        cur = db.execute(
+            "INSERT OR IGNORE INTO revisions VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+            (a.event_id, a.revision, mid, a.state, a.merger_time, a.merger_time_iso, a.far_per_year, a.p_astro,
+             None if a.source_probs is None else _dumps(a.source_probs), sha, _loc_ref(a.localization),
+             _dumps(a.extra), received_at))
+        row = db.execute("SELECT revision FROM events WHERE event_id = ?", (a.event_id,)).fetchone()
+        prev = None if row is None else row[0]
+        if cur.rowcount == 0:
+            return StoredMessage(mid, "gw_alert", "same_revision", prev)
+        if prev is None:
+            db.execute("INSERT INTO events VALUES (?,?,?,?,?,?,?,NULL)",
+                       (a.event_id, a.revision, a.state, a.merger_time, mid, self._now, self._now))
+            return StoredMessage(mid, "gw_alert", "new_event", None)
+        if a.revision > prev:
+            db.execute("UPDATE events SET revision = ?, state = ?, merger_time = ?, message_id = ?, updated_at = ?"
+                       " WHERE event_id = ?", (a.revision, a.state, a.merger_time, mid, self._now, a.event_id))
+            return StoredMessage(mid, "gw_alert", "newer", prev)
+        return StoredMessage(mid, "gw_alert", "older", prev)
+
+    def _apply_transient(self, mid: int, t: TransientReport, sha: str | None, received_at: float) -> StoredMessage:
+        extra = _dumps(t.extra)
+        ref = _loc_ref(t.localization)
+        values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
+                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, ref, extra)
+        content = _dumps(values)
+        cur = self._db.execute("INSERT OR IGNORE INTO transients VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)",
+                               (t.transient_id, mid, *values, content, received_at))
+        if cur.rowcount == 1:
+            return StoredMessage(mid, "transient", "new")
+        cur = self._db.execute(
+            "UPDATE transients SET message_id=?, class=?, ra_deg=?, dec_deg=?, pos_err_deg=?, time=?, time_iso=?,"
+            " last_nondetection=?, redshift=?, redshift_err=?, distance_mpc=?, distance_err_mpc=?,"
+            " localization_sha=?, localization_ref=?, extra=?, content=?, reports=reports+1, received_at=?"
+            " WHERE transient_id=? AND content IS NOT ?",
+            (mid, *values, content, received_at, t.transient_id, content))
+        if cur.rowcount == 1:
+            return StoredMessage(mid, "transient", "updated")
+        self._db.execute("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", (t.transient_id,))
+        return StoredMessage(mid, "transient", "same")
+
+    def quarantine(self, item: RawItem, codec: str, reason: str, field: str | None = None) -> bool:
+        """Keep rejected input byte-identical with its origin and reason.
+
+        Returns
+        -------
+        bool
+            False when the same bytes from the same origin are already quarantined.
+        """
+        cur = self._db.execute(
+            "INSERT OR IGNORE INTO quarantine (dedup, source, origin_kind, origin_where, origin_part, origin_offset,"
+            " origin, codec, field, reason, received_at, stored_at, size, truncated, raw)"
+            " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
+            (item.dedup_key, *self._origin_columns(item), codec, field, str(reason), item.received_at, self._now,
+             item.size, int(item.truncated), item.data))
+        return cur.rowcount == 1
+
+    # ---------------------------------------------------------------- events
+    def set_expiry(self, event_id: str, expires_at: float | None) -> None:
+        """Set when an event stops being active (GPS s; ``None``: never)."""
+        self._db.execute("UPDATE events SET expires_at = ? WHERE event_id = ?", (expires_at, event_id))
+
+    # --------------------------------------------------------------- results
+    def _event_state(self, event_id: str):
+        return self._db.execute("SELECT revision, state FROM events WHERE event_id = ?", (event_id,)).fetchone()
+
+    def enqueue(self, kind: str, key: str, payload: Mapping[str, Any] | str) -> int:
+        """Add an output to the outbox; returns its sequence number."""
+        text = payload if isinstance(payload, str) else _dumps(payload)
+        cur = self._db.execute("INSERT INTO outbox (kind, key, payload, created_at) VALUES (?,?,?,?)",
+                               (kind, key, text, self._now))
+        return cur.lastrowid
+
+    def put_result(self, event_id: str, revision: int, transient_id: str, record: Mapping[str, Any],
+                   status: str = "current") -> ResultRow | None:
+        """Insert or update a result under its deterministic key; publish it when it changed.
+
+        The store sets ``key``, ``event_id``, ``revision``, ``transient_id`` and ``status`` in the
+        record. The status is clamped by the event's state: ``withdrawn`` for a withdrawn event,
+        ``superseded`` for a revision older than the current one.
+
+        Returns
+        -------
+        ResultRow or None
+            The new row (with its outbox ``seq``), or ``None`` when nothing changed.
+        """
+        if status not in RESULT_STATUSES:
+            raise ValueError(f"status must be one of {', '.join(RESULT_STATUSES)}, got {status!r}")
+        ev = self._event_state(event_id)
+        if ev is None:
+            raise ValueError(f"result for unknown event {event_id!r}: store the alert first")
+        if revision > ev[0]:
+            raise ValueError(f"result for {event_id} revision {revision}, newer than its stored revision {ev[0]}")
+        if ev[1] == "withdrawn":
+            status = "withdrawn"
+        elif revision < ev[0] and status == "current":
+            status = "superseded"
+        key = result_key(event_id, revision, transient_id)
+        rec = dict(_jsonable(record))
+        rec.update(key=key, event_id=event_id, revision=int(revision), transient_id=transient_id, status=status)
+        text = _dumps(rec)
+        old = self._db.execute("SELECT record FROM results WHERE key = ?", (key,)).fetchone()
+        if old is not None and old[0] == text:
+            return None
+        seq = self.enqueue("match", key, text)
+        self._db.execute(
+            "INSERT INTO results VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?) ON CONFLICT(key) DO UPDATE SET"
+            " status=excluded.status, class=excluded.class, p_assoc=excluded.p_assoc, fap=excluded.fap,"
+            " odds=excluded.odds, rank=excluded.rank, record=excluded.record, seq=excluded.seq,"
+            " updated_at=excluded.updated_at",
+            (key, event_id, int(revision), transient_id, status, rec.get("class"), rec.get("p_assoc"),
+             rec.get("fap"), rec.get("odds"), rec.get("rank"), text, seq, self._now))
+        return ResultRow(key, event_id, int(revision), transient_id, status, rec, seq)
+
+    def _restatus(self, rows, status: str) -> list[ResultRow]:
+        out = []
+        for key, event_id, revision, transient_id, text in rows:
+            rec = json.loads(text)
+            rec["status"] = status
+            new = _dumps(rec)
+            seq = self.enqueue("match", key, new)
+            self._db.execute("UPDATE results SET status=?, record=?, seq=?, updated_at=? WHERE key=?",
+                             (status, new, seq, self._now, key))
+            out.append(ResultRow(key, event_id, revision, transient_id, status, rec, seq))
+        return out
+
+    def supersede(self, event_id: str, current_revision: int) -> list[ResultRow]:
+        """Mark ``current`` results of revisions before ``current_revision`` superseded (and publish them)."""
+        rows = self._db.execute(
+            "SELECT key, event_id, revision, transient_id, record FROM results WHERE event_id=? AND revision<?"
+            " AND status='current' ORDER BY key", (event_id, int(current_revision))).fetchall()
+        return self._restatus(rows, "superseded")
+
+    def withdraw(self, event_id: str) -> list[ResultRow]:
+        """Mark every result of the event withdrawn (and publish them)."""
+        rows = self._db.execute(
+            "SELECT key, event_id, revision, transient_id, record FROM results WHERE event_id=?"
+            " AND status!='withdrawn' ORDER BY key", (event_id,)).fetchall()
+        return self._restatus(rows, "withdrawn")
+
+    # ------------------------------------------------------------- positions
+    def set_positions(self, source: str, positions: Mapping[str, str]) -> None:
+        """Record where ``source`` resumes, per stream (stored with the batch it belongs to)."""
+        self._db.executemany(
+            "INSERT INTO positions VALUES (?,?,?,?) ON CONFLICT(source, stream) DO UPDATE SET"
+            " token=excluded.token, updated_at=excluded.updated_at",
+            [(source, stream, str(token), self._now) for stream, token in positions.items()])
+
+
+class Store:
+    """The SQLite store (see the module docstring).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The database file; its folder is created. ``":memory:"`` is refused (no WAL, no durability).
+    busy_timeout_s : float, s
+        How long to wait for another writer's lock.
+
+    Raises
+    ------
+    StoreError
+        Not an SQLite file, a newer schema, or WAL not available on that file system.
+    """
+
+    def __init__(self, path, *, busy_timeout_s: float = 30.0):
+        path = os.fspath(path)
+        if path == ":memory:" or path.startswith("file::memory:"):
+            raise StoreError(f"store {path}: an in-memory database is not durable; give a file path")
+        self.path = os.path.abspath(path)
+        parent = os.path.dirname(self.path)
+        try:
+            os.makedirs(parent, exist_ok=True)
+            self._db = sqlite3.connect(self.path, isolation_level=None, timeout=busy_timeout_s)
+        except (OSError, sqlite3.Error) as exc:
+            raise StoreError(f"store {self.path}: cannot open: {exc}") from None
+        self._in_tx = False
+        try:
+            mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
+            if mode.lower() != "wal":
+                raise StoreError(f"store {self.path}: WAL journal not available here (got {mode!r})")
+            self._db.execute("PRAGMA synchronous=FULL")
+            self._db.execute("PRAGMA foreign_keys=ON")
+            self._db.execute(f"PRAGMA busy_timeout={int(busy_timeout_s * 1000)}")
+            self._db.execute("BEGIN IMMEDIATE")
+            for stmt in _SCHEMA.split(";"):
+                if stmt.strip():
+                    self._db.execute(stmt)
+            row = self._db.execute("SELECT value FROM meta WHERE name='schema_version'").fetchone()
+            if row is None:
+                self._db.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+            elif int(row[0]) != SCHEMA_VERSION:
+                raise StoreError(f"store {self.path}: schema version {row[0]}, this program reads {SCHEMA_VERSION}")
+            self._db.execute("COMMIT")
+        except sqlite3.DatabaseError as exc:
+            self._db.close()
+            raise StoreError(f"store {self.path}: not a usable SQLite database: {exc}") from None
+        except StoreError:
+            if self._db.in_transaction:
+                self._db.execute("ROLLBACK")
+            self._db.close()
+            raise
+
+    # ----------------------------------------------------------- lifecycle
+    def close(self) -> None:
+        self._db.close()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    @contextmanager
+    def transaction(self) -> Iterator[Transaction]:
+        """One ``BEGIN IMMEDIATE`` … ``COMMIT``; rolled back if the block raises."""
+        if self._in_tx:
+            raise RuntimeError("store transactions do not nest")
+        self._db.execute("BEGIN IMMEDIATE")
+        self._in_tx = True
+        try:
+            yield Transaction(self)
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        else:
+            self._db.execute("COMMIT")
+        finally:
+            self._in_tx = False
+
+    # ---------------------------------------------------------------- reads
+    def pragma(self, name: str):
+        """The value of a PRAGMA (``journal_mode``, ``synchronous``...)."""
+        if not name.isidentifier():
+            raise ValueError(f"not a pragma name: {name!r}")
+        return self._db.execute(f"PRAGMA {name}").fetchone()[0]
+
+    def positions(self, source: str) -> dict[str, str]:
+        """Stream → token for ``source`` (empty when it never committed)."""
+        return dict(self._db.execute("SELECT stream, token FROM positions WHERE source = ?", (source,)))
+
+    def localization_data(self, sha256: str) -> bytes | None:
+        row = self._db.execute("SELECT data FROM localizations WHERE sha256 = ?", (sha256,)).fetchone()
+        return None if row is None else bytes(row[0])
+
+    _REV_SQL = ("SELECT r.event_id, r.revision, r.message_id, r.state, r.merger_time, r.merger_time_iso,"
+                " r.far_per_year, r.p_astro, r.source_probs, r.localization_sha, r.localization_ref, r.extra,"
+                " e.revision, e.state, e.expires_at FROM revisions r JOIN events e ON e.event_id = r.event_id")
+
+    def _revision(self, row) -> StoredRevision:
+        (eid, rev, mid, state, t, t_iso, far, pa, probs, sha, ref, extra, cur_rev, ev_state, exp) = row
+        loc = _loc_from_ref(ref, self.localization_data(sha) if (sha and ref and "fits_base64" in ref) else None)
+        alert = GWAlert(eid, rev, state, t, t_iso, far, pa, None if probs is None else json.loads(probs), loc,
+                        json.loads(extra))
+        return StoredRevision(alert, sha, mid, rev == cur_rev, ev_state, exp)
+
+    def active_events(self, now: float | None = None) -> list[StoredRevision]:
+        """Current revisions of events not withdrawn and not expired at ``now`` (GPS s; ``None``: ignore expiry).
+
+        This is what the service rebuilds its state from on start. Ordered by event id.
+        """
+        sql = self._REV_SQL + " WHERE r.revision = e.revision AND e.state != 'withdrawn'"
+        args: tuple = ()
+        if now is not None:
+            sql += " AND (e.expires_at IS NULL OR e.expires_at > ?)"
+            args = (float(now),)
+        return [self._revision(r) for r in self._db.execute(sql + " ORDER BY r.event_id", args)]
+
+    def revisions(self, event_id: str) -> list[StoredRevision]:
+        """Every stored revision of an event, oldest first."""
+        return [self._revision(r) for r in
+                self._db.execute(self._REV_SQL + " WHERE r.event_id = ? ORDER BY r.revision", (event_id,))]
+
+    def current_revision(self, event_id: str) -> StoredRevision | None:
+        row = self._db.execute(self._REV_SQL + " WHERE r.event_id = ? AND r.revision = e.revision",
+                               (event_id,)).fetchone()
+        return None if row is None else self._revision(row)
+
+    def transients_between(self, t_lo: float, t_hi: float) -> list[StoredTransient]:
+        """Transients whose bracket [last non-detection (or time), time] meets [t_lo, t_hi] (GPS s)."""
+        rows = self._db.execute(
+            "SELECT transient_id, message_id, class, ra_deg, dec_deg, pos_err_deg, time, time_iso,"
+            " last_nondetection, redshift, redshift_err, distance_mpc, distance_err_mpc, localization_sha,"
+            " localization_ref, extra, reports FROM transients WHERE time >= ? AND COALESCE(last_nondetection, time) <= ?"
+            " ORDER BY time, transient_id", (float(t_lo), float(t_hi)))
+        out = []
+        for (tid, mid, klass, ra, dec, err, t, t_iso, lnd, z, zerr, d, derr, sha, ref, extra, n) in rows:
+            loc = _loc_from_ref(ref, self.localization_data(sha) if (sha and ref and "fits_base64" in ref) else None)
+            rep = TransientReport(tid, klass, ra, dec, t, t_iso, err, lnd, z, zerr, d, derr, loc, json.loads(extra))
+            out.append(StoredTransient(rep, sha, mid, n))
+        return out
+
+    def results(self, event_id: str | None = None, status: str | None = None) -> list[ResultRow]:
+        """Stored results, optionally of one event and/or one status, ordered by key."""
+        sql, args = "SELECT key, event_id, revision, transient_id, status, record, seq FROM results", []
+        where = []
+        if event_id is not None:
+            where.append("event_id = ?")
+            args.append(event_id)
+        if status is not None:
+            where.append("status = ?")
+            args.append(status)
+        if where:
+            sql += " WHERE " + " AND ".join(where)
+        return [ResultRow(k, e, r, t, s, json.loads(rec), seq)
+                for k, e, r, t, s, rec, seq in self._db.execute(sql + " ORDER BY key", args)]
+
+    def quarantined(self, limit: int | None = None) -> list[QuarantineRow]:
+        """Quarantined input, oldest first."""
+        sql = ("SELECT id, source, origin, origin_kind, origin_where, origin_part, origin_offset, codec, field,"
+               " reason, received_at, size, truncated, raw FROM quarantine ORDER BY id")
+        if limit is not None:
+            sql += f" LIMIT {int(limit)}"
+        return [QuarantineRow(*r[:12], bool(r[12]), bytes(r[13])) for r in self._db.execute(sql)]
+
+    def message_raw(self, message_id: int) -> bytes | None:
+        row = self._db.execute("SELECT raw FROM messages WHERE id = ?", (message_id,)).fetchone()
+        return None if row is None else bytes(row[0])
+
+    def counts(self) -> dict[str, int]:
+        """Rows per table, and results per status (``results.current``...), for dashboards and tests."""
+        out = {}
+        for table in ("messages", "localizations", "events", "revisions", "transients", "results",
+                      "quarantine", "outbox"):
+            out[table] = self._db.execute(f"SELECT COUNT(*) FROM {table}").fetchone()[0]
+        for status in RESULT_STATUSES:
+            out[f"results.{status}"] = self._db.execute("SELECT COUNT(*) FROM results WHERE status=?",
+                                                        (status,)).fetchone()[0]
+        return out
+
+    # --------------------------------------------------------------- outbox
+    def outbox_after(self, seq: int, limit: int = 1000) -> list[OutboxRow]:
+        """Outbox rows with a sequence number above ``seq``, in order."""
+        return [OutboxRow(*r) for r in self._db.execute(
+            "SELECT seq, kind, key, payload FROM outbox WHERE seq > ? ORDER BY seq LIMIT ?", (int(seq), int(limit)))]
+
+    def last_seq(self) -> int:
+        row = self._db.execute("SELECT MAX(seq) FROM outbox").fetchone()
+        return row[0] or 0
+
+    def sink_cursor(self, sink: str) -> int:
+        """The last outbox sequence number ``sink`` has durably published (0 if none)."""
+        row = self._db.execute("SELECT sent_seq FROM sink_cursors WHERE sink = ?", (sink,)).fetchone()
+        return 0 if row is None else row[0]
+
+    def mark_sent(self, sink: str, seq: int) -> None:
+        """Record that ``sink`` has durably published every row up to ``seq`` (never moves back)."""
+        if self._in_tx:
+            raise RuntimeError("mark_sent runs after the batch's transaction, not inside it")
+        self._db.execute("BEGIN IMMEDIATE")
+        try:
+            self._db.execute(
+                "INSERT INTO sink_cursors VALUES (?,?,?) ON CONFLICT(sink) DO UPDATE SET"
+                " sent_seq=MAX(sent_seq, excluded.sent_seq), updated_at=excluded.updated_at",
+                (sink, int(seq), time.time()))
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        self._db.execute("COMMIT")

@@ -1,0 +1,71 @@
+"""Bytes to JSON values, with errors a sender can act on.
+
+Shared by the JSON codecs. Checks, in order: size (before anything is parsed),
+UTF-8 (RFC 8259 section 8.1: JSON exchanged between systems is UTF-8), syntax
+(with line and column), nesting depth. ``NaN`` and ``Infinity`` literals, which
+RFC 8259 does not allow but Python's parser reads, are left for the field checks
+so the error can name the field; :func:`check_finite` finds them in fields no
+validator looks at.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from typing import Any
+
+from matcher.errors import MessageError
+from matcher.streams.raw import RawItem
+
+__all__ = ["load_json", "check_finite", "check_size"]
+
+
+def check_size(item: RawItem, codec: str, max_bytes: int) -> None:
+    """Reject an item over ``max_bytes`` (or one its source already truncated)."""
+    if item.truncated or item.size > max_bytes:
+        raise MessageError(codec, None, None,
+                           f"is {item.size} bytes, over the {max_bytes}-byte message limit (limits.message_max_bytes)")
+
+
+def load_json(item: RawItem, codec: str, max_bytes: int) -> Any:
+    """Parse the item's bytes as one JSON value.
+
+    Raises
+    ------
+    MessageError
+        Too large, not UTF-8, not JSON, or nested too deeply.
+    """
+    check_size(item, codec, max_bytes)
+    data = item.data
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise MessageError(codec, None, None,
+                           f"is not UTF-8 text: byte 0x{data[exc.start]:02x} at offset {exc.start}") from None
+    if text.startswith("\ufeff"):
+        raise MessageError(codec, None, None, "starts with a byte-order mark (JSON must not, RFC 8259 section 8.1)")
+    if not text.strip():
+        raise MessageError(codec, None, None, "is empty")
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise MessageError(codec, None, None,
+                           f"is not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}") from None
+    except RecursionError:
+        raise MessageError(codec, None, None, "is nested too deeply to parse") from None
+
+
+def check_finite(value: Any, codec: str, message_id: str | None, path: str) -> None:
+    """Raise ``MessageError`` at the first non-finite number inside ``value``.
+
+    ``path`` names ``value`` in the error (``"extra.snr"``, ``"extra.list[3]"``).
+    """
+    if isinstance(value, float):
+        if not math.isfinite(value):
+            raise MessageError(codec, message_id, path, f"must be finite, got {value!r} (not valid JSON, RFC 8259)")
+    elif isinstance(value, dict):
+        for k, v in value.items():
+            check_finite(v, codec, message_id, f"{path}.{k}")
+    elif isinstance(value, list):
+        for i, v in enumerate(value):
+            check_finite(v, codec, message_id, f"{path}[{i}]")
