@@ -71,7 +71,7 @@ def read_table(path, fmt: str | None = None):
         with warnings.catch_warnings():
             # Unit strings in catalogue headers are often not FITS-standard; we do not use them.
             warnings.simplefilter("ignore", UnitsWarning)
-            table = Table.read(str(path), format=FORMATS[kind])
+            table = _read_parquet(path) if kind == "parquet" else Table.read(str(path), format=FORMATS[kind])
     except CatalogError:
         raise
     except Exception as exc:  # astropy readers raise many types; all mean "unreadable"
@@ -80,6 +80,21 @@ def read_table(path, fmt: str | None = None):
     if isinstance(table, list):  # votable with several tables
         table = table[0]
     return table
+
+
+def _read_parquet(path: Path):
+    """Parquet through pyarrow directly (astropy's reader also wants pandas); nulls become masked."""
+    import pyarrow.parquet as pq
+    from astropy.table import MaskedColumn, Table
+
+    pt = pq.read_table(str(path))
+    cols = {}
+    for name in pt.column_names:
+        col = pt.column(name)
+        arr = col.to_numpy(zero_copy_only=False)
+        nulls = np.asarray(col.is_null().to_numpy(zero_copy_only=False), dtype=bool)
+        cols[name] = MaskedColumn(arr, mask=nulls) if nulls.any() else arr
+    return Table(cols)
 
 
 def read_catalog(
