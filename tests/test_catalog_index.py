@@ -43,7 +43,7 @@ def test_order29_pixels_agree_with_astropy_healpix():
     dec = np.degrees(np.arcsin(rng.uniform(-1, 1, 20_000)))
     ours = fine_pixels(ra, dec)
     theirs = HEALPix(nside=2**29, order="nested").lonlat_to_healpix(ra * u.deg, dec * u.deg)
-    assert np.mean(ours == theirs) > 0.9995
+    assert np.count_nonzero(ours != theirs) <= 2
 
 
 def test_build_sorts_stably_and_keeps_every_galaxy():

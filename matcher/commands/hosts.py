@@ -66,7 +66,8 @@ def load_localization(path):
 
     p = Path(path)
     try:
-        head = p.open("rb").read(64).lstrip()
+        with p.open("rb") as fh:
+            head = fh.read(64).lstrip()
     except OSError as exc:
         raise InputError(f"{p}: cannot read: {exc.strerror or exc}") from None
     if not head.startswith(b"{"):
