@@ -100,7 +100,7 @@ class ReportBatch:
         def check(name, bad, rule):
             if np.any(bad):
                 i = int(np.flatnonzero(bad)[0])
-                raise InputError(f"transient {ids[i]}: {name}={cols[name][i]!r} {rule}")
+                raise InputError(f"transient {ids[i]}: {name}={float(cols[name][i])!r} {rule}")
 
         c = cols
         check("ra_deg", ~(np.isfinite(c["ra_deg"]) & (c["ra_deg"] >= 0) & (c["ra_deg"] <= 360)), "is outside [0, 360]")

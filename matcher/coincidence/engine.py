@@ -57,7 +57,7 @@ def _class_columns(classes: Mapping[str, CounterpartClass], klass: np.ndarray, i
     missing = [n for n in names if n not in classes]
     if missing:
         i = int(np.flatnonzero(klass == missing[0])[0])
-        raise InputError(f"transient {ids[i]}: class {missing[0]!r} is not configured "
+        raise InputError(f"transient {ids[i]}: class {str(missing[0])!r} is not configured "
                          f"(known classes: {', '.join(sorted(classes))})")
     cl = [classes[n] for n in names]
 
@@ -281,6 +281,34 @@ def score_reports(
     )
 
 
+def _smoothed_measure(skymap, ra, dec, sigma, T, L, W):
+    """Measure on Gaussian-smoothed tables at the two nodes around each σ, each node ranked
+    by the report's overlap at that node's σ (self-consistent), ``ln μ`` interpolated in ``ln σ``."""
+    lg = 4.0 * np.log2(sigma)
+    k = np.floor(lg + 1e-9)
+    t = np.clip(lg - k, 0.0, 1.0)
+    t[t < 1e-9] = 0.0
+    out = np.empty(sigma.size)
+    for kk in np.unique(k):
+        sel = np.flatnonzero(k == kk)
+        ms = []
+        for node_k in (int(kk), int(kk) + 1):
+            node = min(node_value(node_k), 90.0)
+            y = skymap.overlap_gaussian(ra[sel], dec[sel], np.full(sel.size, node))
+            ms.append(smoothed_sky_table(skymap, node).measure(y * T[sel], L[sel], W[sel]))
+            if not np.any(t[sel] > 0):
+                break
+        if len(ms) == 1:
+            out[sel] = ms[0]
+            continue
+        ts = t[sel]
+        both = (ms[0] > 0) & (ms[1] > 0)
+        with np.errstate(divide="ignore"):
+            mix = np.exp((1 - ts) * np.log(np.where(both, ms[0], 1.0)) + ts * np.log(np.where(both, ms[1], 1.0)))
+        out[sel] = np.where(both, mix, (1 - ts) * ms[0] + ts * ms[1])
+    return out
+
+
 def _background_measure(skymap, batch, live, score, I, T, L, W, sigma, use_d, s_d, reach, maps):
     """Background measure (sr·s) of the region scoring at least as high, per live report (see :mod:`.fap`)."""
     rows = np.flatnonzero(live)
@@ -300,20 +328,20 @@ def _background_measure(skymap, batch, live, score, I, T, L, W, sigma, use_d, s_
     if np.any(plain):
         r, sc, l_, w_ = part(plain)
         out[plain] = sky_table(skymap).measure(sc, l_, w_)
-    if np.any(smooth):
-        r, sc, l_, w_ = part(smooth)
-        out[smooth] = interpolated_measure(lambda node: smoothed_sky_table(skymap, node), sigma[r], sc, l_, w_)
-    if np.any(mapped):
-        pos = np.flatnonzero(mapped)
-        for j, i in zip(pos, rows[mapped]):
-            sig = equivalent_sigma_deg(maps[i])
-            if sig < SMOOTH_MIN_SIGMA_DEG:
-                out[j] = sky_table(skymap).measure(score[i], L[i], W[i])
-                continue
-            k = int(round(4.0 * math.log2(min(sig, 90.0))))
-            node = node_value(k)
-            y = float(skymap.overlap_gaussian(batch.ra_deg[i], batch.dec_deg[i], min(node, 90.0)))
-            out[j] = smoothed_sky_table(skymap, node).measure(y * T[i], L[i], W[i])
+    if np.any(smooth) or np.any(mapped):
+        eq = sigma.copy()
+        if np.any(mapped):
+            for i in rows[mapped]:
+                eq[i] = equivalent_sigma_deg(maps[i])
+        wide = smooth | (mapped & (eq[rows] >= SMOOTH_MIN_SIGMA_DEG))
+        narrow_map = mapped & ~wide
+        if np.any(narrow_map):
+            r, sc, l_, w_ = part(narrow_map)
+            out[narrow_map] = sky_table(skymap).measure(sc, l_, w_)
+        if np.any(wide):
+            r = rows[wide]
+            out[wide] = _smoothed_measure(skymap, batch.ra_deg[r], batch.dec_deg[r], np.minimum(eq[r], 90.0),
+                                          T[r], L[r], W[r])
     if np.any(dist):
         pos = np.flatnonzero(dist)
         r = rows[dist]

@@ -49,7 +49,9 @@ conservative on ties.
   instead of :data:`DISTANCE_BINS` (they matter only for low scores).
 * A Gaussian position error ``σ >= 1°`` smooths the statistic: the cells are
   pixels of a flat grid (pixel ≲ σ, order ≤ 6) with ``y`` the Gaussian overlap
-  at their centres, tabulated at nodes ``σ = 2^(k/4)`` deg and interpolated.
+  at their centres, tabulated at nodes ``σ = 2^(k/4)`` deg; at each of the two
+  nodes around a report's σ the report is ranked by its own overlap at that
+  node's σ, and ``ln μ`` is interpolated in ``ln σ``.
   Smaller errors use the map itself (the region differs from the smoothed one
   only where the map has structure finer than a degree). A report with its own
   map is ranked as a Gaussian of the same 39.35 % credible area.
