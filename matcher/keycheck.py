@@ -8,11 +8,35 @@ from __future__ import annotations
 import difflib
 import math
 from pathlib import Path
+from dataclasses import dataclass, field
 from typing import Any, Iterable, Mapping
 
 from matcher.errors import ConfigError
 
-__all__ = ["check_keys", "get_str", "get_number", "get_int", "get_bool", "get_path", "get_str_list", "sub"]
+__all__ = ["ParseContext", "check_keys", "get_str", "get_number", "get_int", "get_bool", "get_path", "get_str_list", "sub"]
+
+
+@dataclass(frozen=True)
+class ParseContext:
+    """What an option parser may need besides its own mapping.
+
+    Attributes
+    ----------
+    base_dir : Path
+        Folder that relative paths resolve against (the configuration file's folder).
+    secrets : mapping
+        Secret name → :class:`matcher.config.SecretRef`, for options that refer to a secret by name.
+    """
+
+    base_dir: Path
+    secrets: Mapping[str, Any] = field(default_factory=dict)
+
+    def secret(self, name: Any, keypath: str):
+        """The secret called ``name``; ``ConfigError`` at ``keypath`` if ``secrets`` does not define it."""
+        if not isinstance(name, str) or name not in self.secrets:
+            known = ", ".join(sorted(self.secrets)) or "none defined"
+            raise ConfigError(keypath, f"refers to secret {name!r}, which secrets does not define ({known})")
+        return self.secrets[name]
 
 
 def sub(keypath: str, key: str) -> str:

@@ -13,11 +13,10 @@ returns the store's cursor, publishes at least once, and consumers de-duplicate 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any, Callable, Mapping, Protocol, Sequence, runtime_checkable
 
 from matcher.errors import ConfigError, InputError
-from matcher.keycheck import get_str_list, sub
+from matcher.keycheck import ParseContext, get_str_list, sub
 from matcher.store import OutboxRow, Store
 
 __all__ = [
@@ -77,10 +76,10 @@ class Sink(Protocol):
 
 @dataclass(frozen=True)
 class SinkKind:
-    """A registered kind of sink: ``parse_options(raw, keypath, base_dir)`` and ``build(name, options)``."""
+    """A registered kind of sink: ``parse_options(raw, keypath, ctx: ParseContext)`` and ``build(name, options)``."""
 
     name: str
-    parse_options: Callable[[Mapping[str, Any], str, Path], Any]
+    parse_options: Callable[[Mapping[str, Any], str, ParseContext], Any]
     build: Callable[[str, Any], Sink]
 
 

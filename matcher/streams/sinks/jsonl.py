@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping, Sequence
 
-from matcher.keycheck import check_keys, get_bool, get_path
+from matcher.keycheck import ParseContext, check_keys, get_bool, get_path
 from matcher.store import OutboxRow
 from matcher.streams.sinks.base import SinkError, SinkKind, parse_kinds, register_sink_kind
 from matcher.streams.fsutil import fsync_dir
@@ -135,9 +135,9 @@ class JsonlSink:
             self._fh = None
 
 
-def _parse(raw: Mapping[str, Any], keypath: str, base_dir: Path) -> JsonlOptions:
+def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> JsonlOptions:
     check_keys(raw, ("path", "kinds", "fsync"), keypath, required=("path",))
-    return JsonlOptions(get_path(raw, "path", keypath, base_dir), parse_kinds(raw, keypath),
+    return JsonlOptions(get_path(raw, "path", keypath, ctx.base_dir), parse_kinds(raw, keypath),
                         get_bool(raw, "fsync", keypath, True))
 
 

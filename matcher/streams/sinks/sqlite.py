@@ -18,7 +18,7 @@ from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 from matcher.errors import ConfigError
-from matcher.keycheck import check_keys, get_path, get_str
+from matcher.keycheck import ParseContext, check_keys, get_path, get_str
 from matcher.store import OutboxRow
 from matcher.streams.sinks.base import SinkError, SinkKind, parse_kinds, register_sink_kind
 
@@ -89,12 +89,12 @@ class SqliteSink:
             self._db = None
 
 
-def _parse(raw: Mapping[str, Any], keypath: str, base_dir: Path) -> SqliteSinkOptions:
+def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> SqliteSinkOptions:
     check_keys(raw, ("path", "table", "kinds"), keypath, required=("path",))
     table = get_str(raw, "table", keypath, "matches")
     if not table.isidentifier():
         raise ConfigError(f"{keypath}.table", f"must be an identifier (letters, digits, _), got {table!r}")
-    return SqliteSinkOptions(get_path(raw, "path", keypath, base_dir), table, parse_kinds(raw, keypath))
+    return SqliteSinkOptions(get_path(raw, "path", keypath, ctx.base_dir), table, parse_kinds(raw, keypath))
 
 
 def _build(name: str, options: SqliteSinkOptions) -> SqliteSink:

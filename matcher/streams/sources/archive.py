@@ -27,7 +27,7 @@ from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 from matcher.errors import InputError
-from matcher.keycheck import check_keys, get_number, get_path
+from matcher.keycheck import ParseContext, check_keys, get_number, get_path
 from matcher.streams.raw import Origin, RawItem
 from matcher.streams.sources.base import Settled, SourceKind, register_source_kind
 from matcher.timeconv import gps_to_unix, iso_to_gps
@@ -236,9 +236,9 @@ class ArchiveSource:
         self._fh.close()
 
 
-def _parse(raw: Mapping[str, Any], keypath: str, base_dir: Path) -> ArchiveOptions:
+def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> ArchiveOptions:
     check_keys(raw, ("path", "speed"), keypath, required=("path",))
-    return ArchiveOptions(path=get_path(raw, "path", keypath, base_dir),
+    return ArchiveOptions(path=get_path(raw, "path", keypath, ctx.base_dir),
                           speed=get_number(raw, "speed", keypath, None, lo=0.0, lo_open=True))
 
 

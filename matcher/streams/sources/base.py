@@ -15,10 +15,10 @@ without touching the loop.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any, Callable, Mapping, Protocol, Sequence, runtime_checkable
 
 from matcher.errors import ConfigError
+from matcher.keycheck import ParseContext
 from matcher.streams.raw import RawItem
 
 __all__ = [
@@ -83,15 +83,16 @@ class SourceKind:
     ----------
     name : str
     parse_options : callable
-        ``parse_options(raw: Mapping, keypath: str, base_dir: Path) -> options`` (a frozen
+        ``parse_options(raw: Mapping, keypath: str, ctx: ParseContext) -> options`` (a frozen
         object); ``raw`` is the YAML mapping without ``kind`` and ``codec``; relative paths
-        resolve against ``base_dir`` (the configuration's folder).
+        resolve against ``ctx.base_dir`` (the configuration's folder); ``ctx.secret(name, keypath)``
+        looks up a secret by name (for a Kafka kind's credentials).
     build : callable
         ``build(name: str, options, *, max_bytes: int) -> Source``.
     """
 
     name: str
-    parse_options: Callable[[Mapping[str, Any], str, Path], Any]
+    parse_options: Callable[[Mapping[str, Any], str, ParseContext], Any]
     build: Callable[..., Source]
 
 

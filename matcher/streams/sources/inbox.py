@@ -23,7 +23,7 @@ from pathlib import Path
 from typing import Any, Mapping, Sequence
 
 from matcher.errors import MatcherWarning
-from matcher.keycheck import check_keys, get_number, get_path, get_str
+from matcher.keycheck import ParseContext, check_keys, get_number, get_path, get_str
 from matcher.streams.fsutil import fsync_dir, write_durably
 from matcher.streams.raw import Origin, RawItem
 from matcher.streams.sources.base import Settled, SourceKind, register_source_kind
@@ -184,13 +184,13 @@ class InboxSource:
         self._inflight.clear()
 
 
-def _parse(raw: Mapping[str, Any], keypath: str, base_dir: Path) -> InboxOptions:
+def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> InboxOptions:
     check_keys(raw, ("path", "pattern", "done_dir", "rejected_dir", "settle_s"), keypath, required=("path",))
     return InboxOptions(
-        path=get_path(raw, "path", keypath, base_dir),
+        path=get_path(raw, "path", keypath, ctx.base_dir),
         pattern=get_str(raw, "pattern", keypath, "*.json"),
-        done_dir=get_path(raw, "done_dir", keypath, base_dir),
-        rejected_dir=get_path(raw, "rejected_dir", keypath, base_dir),
+        done_dir=get_path(raw, "done_dir", keypath, ctx.base_dir),
+        rejected_dir=get_path(raw, "rejected_dir", keypath, ctx.base_dir),
         settle_s=get_number(raw, "settle_s", keypath, 0.0, lo=0.0),
     )
 
