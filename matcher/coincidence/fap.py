@@ -96,10 +96,10 @@ __all__ = [
 #: Gaussian errors at least this large (deg) are ranked on a smoothed map.
 SMOOTH_MIN_SIGMA_DEG = 1.0
 #: Pixels resolved in distance in a distance table (the densest ones).
-MAX_DISTANCE_PIXELS = 20000
+MAX_DISTANCE_PIXELS = 8000
 #: Distance bins of a distance table (densest pixels / the others).
 DISTANCE_BINS = 160
-COARSE_DISTANCE_BINS = 24
+COARSE_DISTANCE_BINS = 16
 _TIE = 1.0 - 1e-12  # a candidate ties with its own cell despite float rounding
 _Y_FLOOR = 1e-280
 
