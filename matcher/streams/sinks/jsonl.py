@@ -107,7 +107,11 @@ class JsonlSink:
                 self._fh.truncate(end)
                 os.fsync(self._fh.fileno())
         except OSError as exc:
+            self.close()
             raise SinkError(f"sink {self.name}: cannot open {self.path}: {exc.strerror or exc}") from None
+        except SinkError:
+            self.close()
+            raise
         return self._hwm
 
     def write(self, rows: Sequence[OutboxRow]) -> None:

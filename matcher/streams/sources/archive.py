@@ -232,6 +232,12 @@ class ArchiveSource:
     def commit(self, settled: Sequence[Settled]) -> None:
         """Nothing to do at the file: an archive's position lives in the store."""
 
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
     def close(self) -> None:
         self._fh.close()
 

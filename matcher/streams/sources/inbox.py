@@ -180,6 +180,12 @@ class InboxSource:
             for d in (self.path, self.done_dir, self.rejected_dir):
                 fsync_dir(d)
 
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
     def close(self) -> None:
         self._inflight.clear()
 
