@@ -200,3 +200,15 @@ def test_cli_hosts_errors_are_one_line(cli_files, tmp_path, capsys):
     assert "no such" in err and "Traceback" not in err
     assert main(["hosts", str(map_path), "--catalog", str(cat_path), "--out", str(tmp_path / "x.txt")]) == 2
     assert ".ecsv, .csv or .vot" in capsys.readouterr().err
+
+
+def test_demo_fixtures_rank_hosts_of_the_demo_map(fixtures_dir, capsys):
+    cat_path = fixtures_dir / "catalog" / "demo_galaxies.ecsv"
+    table_path = fixtures_dir / "catalog" / "demo_completeness.csv"
+    map_path = fixtures_dir / "skymaps" / "demo_blob.multiorder.fits.gz"
+    assert main(["hosts", str(map_path), "--catalog", str(cat_path), "--completeness-table", str(table_path),
+                 "--json", "--top", "3"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["object"] == "GW-DEMO-0001" and out["n_galaxies"] > 50
+    assert 0.0 < out["p_outside_catalog"] < 0.5
+    assert not (fixtures_dir / "catalog" / "demo_galaxies.ecsv.index").exists()  # nothing written beside it

@@ -212,7 +212,7 @@ def _parse_numeric(col, n: int, label: str, source: str):
     bad = np.zeros(n, dtype=bool)
     kind = arr.dtype.kind
     if kind in "iuf":
-        values = arr.astype(np.float64)
+        values = arr.astype(np.float64, copy=False)  # no copy of float64 columns: catalogues are large
     elif kind == "b":
         raise CatalogError(f"{source}: column {label!r} holds true/false values, expected numbers")
     elif kind in "USO":
@@ -233,8 +233,9 @@ def _parse_numeric(col, n: int, label: str, source: str):
         bad = unparsable[inverse.reshape(n)]
     else:
         raise CatalogError(f"{source}: column {label!r} has unsupported type {arr.dtype}")
-    values = np.where(missing, np.nan, values)
-    bad &= ~missing
+    if missing.any():
+        values = np.where(missing, np.nan, values)
+        bad &= ~missing
     return values, bad
 
 
@@ -334,7 +335,8 @@ def catalog_from_table(
     with np.errstate(invalid="ignore"):
         reasons["bad_position"] |= ~(np.isfinite(ra) & (ra >= 0) & (ra <= 360))
         reasons["bad_position"] |= ~(np.isfinite(dec) & (dec >= -90) & (dec <= 90))
-    ra = np.where(ra == 360.0, 0.0, ra)
+    if np.any(ra == 360.0):
+        ra = np.where(ra == 360.0, 0.0, ra)
 
     dist = vals.get("distance_mpc", np.full(n, np.nan))
     derr = vals.get("distance_err_mpc", np.full(n, np.nan))
