@@ -202,3 +202,15 @@ def test_cli_index_counts_rejections(tmp_path, capsys):
     out = json.loads(capsys.readouterr().out)
     assert out["n_accepted"] == 1 and out["rejected"] == {"bad_position": 1, "bad_distance": 1}
     assert (tmp_path / "some_bad.csv.index" / "index.json").is_file()
+
+
+def test_parquet_nulls_are_missing_values(tmp_path):
+    pa = pytest.importorskip("pyarrow")
+    import pyarrow.parquet as pq
+
+    path = tmp_path / "nulls.parquet"
+    pq.write_table(pa.table({"ra_deg": [1.0, 2.0, None], "dec_deg": [1.0, 2.0, 3.0],
+                             "distance_mpc": [None, 20.0, 30.0], "redshift": [0.01, None, None]}), path)
+    cat, report = read_catalog(path)
+    assert report.rejected == {"bad_position": 1}
+    assert cat.from_redshift.tolist() == [True, False]

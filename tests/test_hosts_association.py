@@ -19,7 +19,6 @@ from matcher.catalog import (
     number_density_berger,
     rank_hosts,
     synthetic_catalog,
-    write_index,
 )
 from matcher.cli import main
 from matcher.errors import CatalogError
@@ -212,3 +211,21 @@ def test_demo_fixtures_rank_hosts_of_the_demo_map(fixtures_dir, capsys):
     assert out["object"] == "GW-DEMO-0001" and out["n_galaxies"] > 50
     assert 0.0 < out["p_outside_catalog"] < 0.5
     assert not (fixtures_dir / "catalog" / "demo_galaxies.ecsv.index").exists()  # nothing written beside it
+
+
+def test_cli_hosts_uses_the_index_completeness_and_a_transient_file(cli_files, tmp_path, capsys):
+    map_path, cat_path, alert_path = cli_files
+    assert main(["catalog", "index", str(cat_path), "--mag-limit", "20"]) == 0
+    capsys.readouterr()
+    assert main(["hosts", str(alert_path), "--catalog", str(cat_path), "--json", "--top", "1"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["p_outside_catalog"] is not None and 0.0 < out["p_outside_catalog"] < 1.0
+    best = out["galaxies"][0]
+    transient = tmp_path / "at.json"
+    transient.write_text(json.dumps({
+        "schema": "matcher/1", "type": "transient", "transient_id": "AT-TEST-3", "class": "kilonova",
+        "ra_deg": best["ra_deg"], "dec_deg": best["dec_deg"], "pos_err_deg": 0.0001,
+        "time": "2026-11-28T06:00:00Z"}))
+    assert main(["hosts", str(alert_path), "--catalog", str(cat_path), "--transient", str(transient)]) == 0
+    text = capsys.readouterr().out
+    assert "Hosts of transient AT-TEST-3" in text and f"best host: {best['galaxy_id']}" in text
