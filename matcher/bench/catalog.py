@@ -41,7 +41,7 @@ def register(sub) -> None:
     p.add_argument("--seed", type=int, default=2026)
     p.add_argument("--repeat", type=int, default=5, help="repeats of the ranking (median reported)")
     p.add_argument("--workdir", help="where to write the catalogue and index (default: a temporary directory)")
-    p.add_argument("--keep", action="store_true", help="keep the files in --workdir")
+    p.add_argument("--keep", action="store_true", help="keep the catalogue, index and map it writes")
     p.set_defaults(func=run)
 
 
@@ -161,6 +161,9 @@ def run(args) -> int:
     work = Path(args.workdir) if args.workdir else Path(tempfile.mkdtemp(prefix="matcher-bench-catalog-"))
     work.mkdir(parents=True, exist_ok=True)
     cat_path, idx_path, map_path = work / "galaxies.fits", work / "galaxies.fits.index", work / "map.fits"
+    taken = [p.name for p in (cat_path, idx_path, map_path) if p.exists()]
+    if taken:
+        raise InputError(f"--workdir {work}: already holds {', '.join(taken)}; use another directory")
     print("matcher bench catalog")
     try:
         t0 = time.perf_counter()
@@ -223,6 +226,11 @@ def run(args) -> int:
         print_row("check: same top-100 galaxies in order / max rel. diff", f"{same}/100 / {rel:.1e} "
                   "(99.9% region vs whole sky)")
     finally:
-        if not (args.keep and args.workdir):
-            shutil.rmtree(work, ignore_errors=True)
+        if not args.keep:
+            # Only what this run wrote: a --workdir given by the user stays, with anything else in it.
+            for path in (cat_path, map_path):
+                path.unlink(missing_ok=True)
+            shutil.rmtree(idx_path, ignore_errors=True)
+            if not args.workdir:
+                shutil.rmtree(work, ignore_errors=True)
     return 0
