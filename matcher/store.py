@@ -275,8 +275,20 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
+_ENCODER = json.JSONEncoder(sort_keys=True, separators=(",", ":"), allow_nan=False)
+
+
 def _dumps(value: Any) -> str:
-    return json.dumps(_jsonable(value), sort_keys=True, separators=(",", ":"), allow_nan=False)
+    """Canonical JSON text (sorted keys, no spaces); numpy values and non-finite floats converted."""
+    try:
+        return _ENCODER.encode(value)  # the common case: plain JSON values, encoded in C
+    except (TypeError, ValueError):
+        return _ENCODER.encode(_jsonable(value))
+
+
+def _chunks(seq, size: int = 500):
+    for i in range(0, len(seq), size):
+        yield seq[i:i + size]
 
 
 def _loc_ref(loc: Localization | None) -> str | None:
@@ -378,12 +390,16 @@ class Transaction:
             return StoredMessage(mid, "gw_alert", "newer", prev)
         return StoredMessage(mid, "gw_alert", "older", prev)
 
-    def _apply_transient(self, mid: int, t: TransientReport, sha: str | None, received_at: float) -> StoredMessage:
-        extra = _dumps(t.extra)
-        ref = _loc_ref(t.localization)
+    @staticmethod
+    def _transient_values(t: TransientReport, sha: str | None):
         values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
-                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, ref, extra)
-        content = _dumps(values)
+                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
+                  _dumps(t.extra))
+        # What "the same report" means: every stored field equal. repr of floats and strings is exact.
+        return values, repr(values)
+
+    def _apply_transient(self, mid: int, t: TransientReport, sha: str | None, received_at: float) -> StoredMessage:
+        values, content = self._transient_values(t, sha)
         cur = self._db.execute("INSERT OR IGNORE INTO transients VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)",
                                (t.transient_id, mid, *values, content, received_at))
         if cur.rowcount == 1:
@@ -398,6 +414,86 @@ class Transaction:
             return StoredMessage(mid, "transient", "updated")
         self._db.execute("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", (t.transient_id,))
         return StoredMessage(mid, "transient", "same")
+
+    def add_messages(self, entries: Sequence[tuple[RawItem, str, Message, LoadedLocalization | None]]
+                     ) -> list[StoredMessage | None]:
+        """:meth:`add_message` for a whole batch at once, with the same results, in fewer statements.
+
+        Parameters
+        ----------
+        entries : sequence of (item, codec, message, localization)
+
+        Returns
+        -------
+        list of StoredMessage or None
+            One per entry, in order (``None``: already stored, or repeated earlier in the batch).
+        """
+        db = self._db
+        out: list[StoredMessage | None] = [None] * len(entries)
+        keys = [e[0].dedup_key for e in entries]
+        existing: set[bytes] = set()
+        for chunk in _chunks(keys):
+            existing.update(r[0] for r in db.execute(
+                f"SELECT dedup FROM messages WHERE dedup IN ({','.join('?' * len(chunk))})", chunk))
+        next_id = db.execute("SELECT COALESCE(MAX(id), 0) FROM messages").fetchone()[0] + 1
+        rows, fresh = [], []
+        for i, (item, codec, message, _loc) in enumerate(entries):
+            key = keys[i]
+            if key in existing:
+                continue
+            existing.add(key)
+            if isinstance(message, GWAlert):
+                kind, mkey = "gw_alert", f"{message.event_id}#{message.revision}"
+            elif isinstance(message, TransientReport):
+                kind, mkey = "transient", message.transient_id
+            else:
+                raise TypeError(f"expected a GWAlert or TransientReport, got {type(message).__name__}")
+            rows.append((next_id, key, *self._origin_columns(item), codec, item.received_at, self._now, kind, mkey,
+                         item.data))
+            fresh.append((i, next_id))
+            next_id += 1
+        db.executemany("INSERT INTO messages (id, dedup, source, origin_kind, origin_where, origin_part,"
+                       " origin_offset, origin, codec, received_at, stored_at, kind, message_key, raw)"
+                       " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?)", rows)
+        reports = []
+        for i, mid in fresh:
+            item, _codec, message, loc = entries[i]
+            sha = self._put_localization(loc)
+            if isinstance(message, GWAlert):
+                out[i] = self._apply_alert(mid, message, sha, item.received_at)
+            else:
+                reports.append((i, mid, message, sha, item.received_at))
+        if not reports:
+            return out
+        tids = list({r[2].transient_id for r in reports})
+        known: dict[str, str] = {}
+        for chunk in _chunks(tids):
+            known.update(db.execute(f"SELECT transient_id, content FROM transients WHERE transient_id IN"
+                                    f" ({','.join('?' * len(chunk))})", chunk))
+        inserts, updates, same = [], [], []
+        for i, mid, t, sha, received_at in reports:
+            values, content = self._transient_values(t, sha)
+            prev = known.get(t.transient_id)
+            if prev is None:
+                inserts.append((t.transient_id, mid, *values, content, received_at))
+                effect = "new"
+            elif prev != content:
+                updates.append((mid, *values, content, received_at, t.transient_id))
+                effect = "updated"
+            else:
+                same.append((t.transient_id,))
+                effect = "same"
+            known[t.transient_id] = content
+            out[i] = StoredMessage(mid, "transient", effect)
+        # Inserts first: a report inserted and then updated within the batch keeps its order.
+        db.executemany("INSERT INTO transients VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)", inserts)
+        db.executemany(
+            "UPDATE transients SET message_id=?, class=?, ra_deg=?, dec_deg=?, pos_err_deg=?, time=?, time_iso=?,"
+            " last_nondetection=?, redshift=?, redshift_err=?, distance_mpc=?, distance_err_mpc=?,"
+            " localization_sha=?, localization_ref=?, extra=?, content=?, reports=reports+1, received_at=?"
+            " WHERE transient_id=?", updates)
+        db.executemany("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", same)
+        return out
 
     def quarantine(self, item: RawItem, codec: str, reason: str, field: str | None = None) -> bool:
         """Keep rejected input byte-identical with its origin and reason.
@@ -456,7 +552,7 @@ class Transaction:
         elif revision < ev[0] and status == "current":
             status = "superseded"
         key = result_key(event_id, revision, transient_id)
-        rec = dict(_jsonable(record))
+        rec = dict(json.loads(_dumps(record)))
         rec.update(key=key, event_id=event_id, revision=int(revision), transient_id=transient_id, status=status)
         text = _dumps(rec)
         old = self._db.execute("SELECT record FROM results WHERE key = ?", (key,)).fetchone()

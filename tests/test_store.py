@@ -228,3 +228,40 @@ def test_outbox_cursor(store, folder):
     with store.transaction():
         with pytest.raises(RuntimeError, match="after the batch"):
             store.mark_sent("m", 5)
+
+
+def table_rows(store, table, cols="*"):
+    return store._db.execute(f"SELECT {cols} FROM {table} ORDER BY 1").fetchall()
+
+
+def test_bulk_writes_equal_one_by_one(folder):
+    from matcher.streams.intake import record_batch
+
+    items = [item(transient(tid="A"), folder, 1), item(transient(tid="B"), folder, 2),
+             item(transient(tid="A"), folder, 3),  # same content, another line
+             item(transient(tid="A", ra=12.0), folder, 4),  # updated within the batch
+             item(transient(tid="B"), folder, 2),  # the very same item again: a duplicate
+             item(gw(revision=2), folder, 5), item(gw(revision=1), folder, 6), item(gw(revision=2), folder, 7),
+             item(b"{oops", folder, 8), item(transient(tid="C", dec=99.0), folder, 9),
+             item(transient(tid="A", ra=13.0), folder, 10)]
+    codec = NativeCodec()
+    decoded = [decode_item(it, codec) for it in items]
+    one, bulk = Store(folder / "one.sqlite"), Store(folder / "bulk.sqlite")
+    with one.transaction() as tx:
+        a = [record(tx, d) for d in decoded[:5]]
+    with one.transaction() as tx:
+        a += [record(tx, d) for d in decoded[5:]]
+    with bulk.transaction() as tx:
+        b = record_batch(tx, decoded[:5])
+    with bulk.transaction() as tx:
+        b += record_batch(tx, decoded[5:])
+    assert a == b
+    assert [x.effect if x not in (None, True, False) else x for x in a] == [
+        "new", "new", "same", "updated", None, "new_event", "older", "same_revision", True, True, "updated"]
+    for table in ("messages", "transients", "events", "revisions", "quarantine"):
+        cols = "*" if table not in ("events", "quarantine") else "event_id, revision, state" if table == "events" else "raw, reason"
+        if table == "messages":
+            cols = "id, dedup, origin, kind, message_key, raw"
+        assert table_rows(one, table, cols) == table_rows(bulk, table, cols), table
+    one.close()
+    bulk.close()

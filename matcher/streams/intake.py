@@ -19,7 +19,7 @@ from matcher.streams.localization import LoadedLocalization, LocalizationLimits,
 from matcher.streams.messages import Message
 from matcher.streams.raw import RawItem
 
-__all__ = ["Accepted", "Rejected", "Decoded", "decode_item", "record"]
+__all__ = ["Accepted", "Rejected", "Decoded", "decode_item", "record", "record_batch"]
 
 
 @dataclass(frozen=True)
@@ -90,3 +90,22 @@ def record(tx, decoded: Decoded):
     if isinstance(decoded, Accepted):
         return tx.add_message(decoded.item, decoded.codec, decoded.message, decoded.localization)
     return tx.quarantine(decoded.item, decoded.codec, decoded.reason, decoded.field)
+
+
+def record_batch(tx, decoded) -> list:
+    """:func:`record` for a batch, in order, with the accepted messages written in bulk.
+
+    Returns
+    -------
+    list
+        One entry per decoded item, as :func:`record` returns it.
+    """
+    out: list = [None] * len(decoded)
+    accepted = [(i, d) for i, d in enumerate(decoded) if isinstance(d, Accepted)]
+    stored = tx.add_messages([(d.item, d.codec, d.message, d.localization) for _, d in accepted])
+    for (i, _), r in zip(accepted, stored):
+        out[i] = r
+    for i, d in enumerate(decoded):
+        if not isinstance(d, Accepted):
+            out[i] = tx.quarantine(d.item, d.codec, d.reason, d.field)
+    return out
