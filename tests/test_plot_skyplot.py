@@ -320,7 +320,7 @@ def test_ranking_by_credible_level_without_scores(blob):
     assert [c.transient_id for c in sp.candidates] == ["near", "mid", "far"]
     assert sp.ranking == "credible_level"
     legend = sp.figure.legends[0]
-    assert any("ranked by credible level (not scored)" in t.get_text() for t in legend.get_texts())
+    assert any("(by credible level: not scored)" in t.get_text() for t in legend.get_texts())
 
 
 def test_given_ranks_are_kept_and_must_be_distinct(blob):
@@ -371,6 +371,7 @@ def test_map_without_distance_layers():
         (lambda: Candidate("T20", 1.0, 0.0, p_assoc=1.5), "candidate T20: p_assoc=1.5 is outside"),
         (lambda: Candidate("T21", 1.0, 0.0, rank=0), "candidate T21: rank=0 must be a positive integer"),
         (lambda: Candidate("T22", 1.0, 0.0, distance_mpc=0.0), "candidate T22: distance_mpc=0.0 is outside"),
+        (lambda: Candidate("T23", 1.0, 0.0, rank="first"), "candidate T23: rank='first' must be a positive integer"),
         (lambda: Candidate("", 1.0, 0.0), "transient_id must be a non-empty string"),
         (lambda: Host("G9", "north", 0.0), "host G9: ra_deg='north' is not a number"),
     ],

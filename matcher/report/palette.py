@@ -59,7 +59,7 @@ INK = "#15131f"
 PAPER = "#f7f4ec"
 
 #: Reported transients: filled stars, sky blue with a navy edge.
-CANDIDATE = {"marker": "*", "face": "#2a9df4", "edge": "#0b1a33", "size": 150.0, "small": 70.0}
+CANDIDATE = {"marker": "*", "face": "#2a9df4", "edge": "#0b1a33", "size": 150.0, "small": 36.0}
 #: Host galaxies: open (white) diamonds with a dark teal edge.
 HOST = {"marker": "D", "face": "#ffffff", "edge": "#0d5c63", "size": 38.0}
 #: Error circles: dotted navy.

@@ -130,7 +130,11 @@ def _position(who: str, ra, dec) -> tuple[float, float]:
 def _rank(value, who: str) -> int | None:
     if value is None:
         return None
-    if isinstance(value, bool) or not float(value).is_integer() or int(value) < 1:
+    try:
+        ok = not isinstance(value, bool) and float(value).is_integer() and int(value) >= 1
+    except (TypeError, ValueError, OverflowError):
+        ok = False
+    if not ok:
         raise InputError(f"{who}: rank={value!r} must be a positive integer")
     return int(value)
 
@@ -639,8 +643,7 @@ def _legend_handles(cands, hosts, levels, ranking: str, with_errors: bool):
         handles.append(Line2D([], [], color=st["colors"], linestyle=st["linestyles"], linewidth=st["linewidths"],
                               label=f"{lv:.0%} credible region"))
     if cands:
-        how = {"given": "", "p_assoc": ", ranked by P_assoc",
-               "credible_level": ", ranked by credible level (not scored)"}[ranking]
+        how = {"given": "", "p_assoc": " (by P_assoc)", "credible_level": " (by credible level: not scored)"}[ranking]
         with_p = any(c.p_assoc is not None for c in cands)
         handles.append(Line2D([], [], linestyle="none", marker=pal.CANDIDATE["marker"], markersize=11,
                               markerfacecolor=pal.CANDIDATE["face"], markeredgecolor=pal.CANDIDATE["edge"],
@@ -788,8 +791,8 @@ def plot_localization(
 
     with_errors = any(c.err_deg for c in cands)
     handles = _legend_handles(cands, host_list, levels, ranking, with_errors)
-    # The corners outside the ellipse are empty: the legend goes in the lower left one.
-    fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.01, 0.455), fontsize=7.5, frameon=True,
+    # Top right, beside the title: the corners outside the ellipse stay clear for grid labels.
+    fig.legend(handles=handles, loc="upper right", bbox_to_anchor=(0.995, 0.995), fontsize=7.5, frameon=True,
                framealpha=0.92, edgecolor="#cfcbd9")
     sax.set_title("all sky (Mollweide, RA and Dec in degrees)", fontsize=8.5, color="#3b3848", loc="left")
 
