@@ -41,7 +41,8 @@ def _events(n, rng):
     for i in range(n):
         kind = "arc" if i % 4 == 3 else "blob"
         area = float(rng.uniform(20, 300) if kind == "blob" else rng.uniform(200, 800))
-        m = random_skymap(rng, kind=kind, area90_deg2=area, distance=(float(rng.uniform(80, 300)), 50.0),
+        mean = float(rng.uniform(80, 300))
+        m = random_skymap(rng, kind=kind, area90_deg2=area, distance=(mean, 0.3 * mean),
                           max_order=10, pixel_prob=1e-4)
         t = t0 + float(rng.uniform(0, 6 * 3600))  # all merged within six hours
         alert = GWAlert(f"SBENCH{i:02d}", 1, "issued", t, "2024-05-09T00:00:00Z", far_per_year=1.0,

@@ -16,13 +16,12 @@ from stored odds when new candidates join an event.
 
 from __future__ import annotations
 
-import math
 from typing import Mapping, Sequence
 
 import numpy as np
 
 from matcher.coincidence.batch import ReportBatch
-from matcher.coincidence.classes import SECONDS_PER_YEAR, CounterpartClass
+from matcher.coincidence.classes import CounterpartClass
 from matcher.coincidence.distance_term import distance_factor, measured_distances
 from matcher.coincidence.fap import (
     SMOOTH_MIN_SIGMA_DEG,

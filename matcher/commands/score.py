@@ -26,7 +26,10 @@ __all__ = ["register", "run", "load_alert", "load_reports"]
 
 def register(sub) -> None:
     p = sub.add_parser("score", help="rank transient reports as counterparts of one GW alert",
-                       description=__doc__.split("\n\n")[1] if __doc__ else None)
+                       description="Score transient reports (JSON Lines, matcher/1 schema) against one GW "
+                       "alert and list them best first. Relative localization paths resolve against the "
+                       "folder of the message file. Reports outside every window are listed (with odds 0) "
+                       "only with --all.")
     p.add_argument("alert", metavar="ALERT.json", help="GW alert in the matcher/1 schema")
     p.add_argument("reports", metavar="REPORTS.jsonl", help="transient reports, one JSON object per line")
     p.add_argument("-c", "--config", metavar="CONFIG", help="YAML file with a classes: section "
