@@ -27,9 +27,15 @@ with per-pixel distance posteriors ``p(r | pixel)``, is
     p_outside = 1 - Σ_pix P_pix ∫ p(r | pix) C(r) dr / Σ_pix P_pix
 
 over the pixels considered (those where the distance ansatz applies). Each
-integral uses 48-point Gauss–Legendre quadrature in ``u = (r-μ)/σ`` over
-``[max(-μ/σ, -8), 8]`` (the ansatz has mass ~1e-13 beyond 8σ), divided by
-the same quadrature of ``p`` alone so the rule's own error cancels.
+integral uses 24-point Gauss–Legendre quadrature in ``u = (r-μ)/σ`` over
+``[max(-μ/σ, -6.5), 6.5]`` (the ansatz has mass ~1e-10 beyond 6.5σ; for
+μ/σ < -6.5, where the mass is a thin layer above r = 0, over ``20σ²/|μ|``
+from there), divided by the same quadrature of ``p`` alone so the rule's
+own error cancels; ``C`` is tabulated once per call on 16,385 points and
+interpolated linearly. Against adaptive quadrature this is good to ~1e-6
+relative typically and ~1e-4 at worst, where r = 0 lies inside a posterior
+and ``C`` has its ``r^{2(α+2)}`` cusp there — far below the uncertainty of
+any completeness model.
 """
 
 from __future__ import annotations
@@ -58,8 +64,10 @@ NORBERG02_M_STAR = -19.66 + 5.0 * math.log10(0.6766)
 #: b_J faint-end slope (Norberg et al. 2002; from memory).
 NORBERG02_ALPHA = -1.21
 
-_NODES, _WEIGHTS = np.polynomial.legendre.leggauss(48)
-_U_MAX = 8.0
+_NODES, _WEIGHTS = np.polynomial.legendre.leggauss(24)
+_TABLE = 16385
+_CHUNK = 4096
+_U_MAX = 6.5
 
 
 @runtime_checkable
@@ -209,14 +217,27 @@ def p_outside_catalog(completeness: Completeness, prob, mu, sigma, norm) -> floa
         return float("nan")
     p, m, s = prob[ok], mu[ok], sigma[ok]
     x = m / s
-    lo = np.maximum(-x, -_U_MAX)[:, None]
-    hi = _U_MAX
-    half = 0.5 * (hi - lo)
-    u = lo + half * (_NODES[None, :] + 1.0)
-    r = m[:, None] + s[:, None] * u
-    # ∫ p(r|pix) dr in u: N σ² (x+u)² φ(u) du; the constant N σ² cancels in the ratio.
-    dens = (x[:, None] + u) ** 2 * np.exp(-0.5 * u * u) * (half * _WEIGHTS[None, :])
-    c = completeness(np.maximum(r, 0.0))
-    frac_in = np.sum(dens * c, axis=1) / np.sum(dens, axis=1)
+    # r >= 0 is u >= -x. Where -x is large (mu far below zero) the mass sits in a layer of width
+    # ~1/|x| above u = -x: integrate over 20/|x| there (the integrand falls by ~e^-20 across it).
+    lo = np.maximum(-x, -_U_MAX)
+    hi = np.maximum(_U_MAX, lo + 20.0 / np.maximum(lo, 1.0))
+    # C is a function of r alone: tabulate it once on a fine uniform grid and interpolate linearly
+    # (spacing r_max/16383: error ~1e-7 for the smooth models here) instead of evaluating it per node.
+    r_max = float(np.max(np.maximum(m + s * hi, 0.0)))
+    step = (r_max + 1e-9) / (_TABLE - 2)
+    table = np.asarray(completeness(np.arange(_TABLE) * step), dtype=np.float64)
+    frac_in = np.empty(p.size)
+    for a in range(0, p.size, _CHUNK):  # chunks small enough to stay in cache
+        sl = slice(a, a + _CHUNK)
+        half = (0.5 * (hi[sl] - lo[sl]))[:, None]
+        u = lo[sl, None] + half * (_NODES[None, :] + 1.0)
+        xu = x[sl, None] + u
+        # ∫ p(r|pix) dr in u: N σ² (x+u)² φ(u) du; the constant N σ² cancels in the ratio.
+        dens = xu * xu * np.exp(-0.5 * u * u) * (half * _WEIGHTS[None, :])
+        pos = np.maximum(xu * (s[sl, None] / step), 0.0)  # r / step, with r = σ (x + u)
+        i = pos.astype(np.int64)
+        c = table[i]
+        c += (pos - i) * (table[i + 1] - c)
+        frac_in[sl] = np.sum(dens * c, axis=1) / np.sum(dens, axis=1)
     p_in = float(np.sum(p * frac_in) / np.sum(p))
     return float(min(max(1.0 - p_in, 0.0), 1.0))
