@@ -213,6 +213,14 @@ def test_markers_are_drawn_at_the_projected_positions(blob_plot, name):
     np.testing.assert_allclose(got[ok], panel.candidate_xy[ok])
 
 
+def test_view_is_the_image_even_with_markers_outside(blob):
+    far = [Candidate("far-north", 213.25, -10.0), Candidate("far-east", 230.0, -21.5)]
+    sp = plot_localization(blob, candidates=far, zoom_size_px=200, allsky_width_px=400)
+    zoom = sp.panels["zoom"]
+    assert not np.any(zoom.in_view(zoom.candidate_xy))
+    assert zoom.axes.get_xlim() == (-0.5, 199.5) and zoom.axes.get_ylim() == (-0.5, 199.5)
+
+
 def _rgb(c):
     from matplotlib.colors import to_rgb
 

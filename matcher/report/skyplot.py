@@ -555,6 +555,10 @@ def _sky_panel(ax, wcs: WCS, name: str, skymap: SkyMap, levels, norm, cands, hos
                         path_effects=pal.halo(2.6), annotation_clip=True)
             labelled.append(c.transient_id)
 
+    # Markers outside the image must not widen the view (autoscaling would).
+    ny, nx = dens.shape
+    ax.set_xlim(-0.5, nx - 0.5)
+    ax.set_ylim(-0.5, ny - 0.5)
     for coord in (ax.coords[0], ax.coords[1]):
         coord.set_major_formatter("d" if name == "allsky" else "d.d")
         coord.set_ticklabel(size=7.5, color="#3b3848")
