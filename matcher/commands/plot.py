@@ -194,7 +194,8 @@ def run(args) -> int:
         return 0
     how = {"given": "ranked by P_assoc", "p_assoc": "ranked by P_assoc",
            "credible_level": "ranked by credible level (no alert to score against)"}[result.ranking]
-    parts = [f"wrote {out} ({fmt}, {width}×{height} px)"]
+    size = f"{width}×{height} px" if fmt == "png" else "{:g}×{:g} in".format(*result.figure.get_size_inches())
+    parts = [f"wrote {out} ({fmt}, {size})"]
     if result.candidates:
         parts.append(f"{len(result.candidates)} candidates {how}")
     if result.hosts:
