@@ -354,13 +354,13 @@ def catalog_from_table(
         reasons["bad_redshift"] |= use_z & ~(np.isfinite(z) & (z > 0) & (z <= Z_MAX))
         reasons["bad_redshift"] |= use_z & ((zerr < 0) | np.isinf(zerr))
     reasons["no_distance"] |= ~has_d & np.isnan(z)
-    if np.any(use_z):
+    todo = np.flatnonzero(use_z & ~reasons["bad_redshift"])
+    if todo.size:
         table_z = distances or planck18_table()
-        zz = np.where(use_z & ~reasons["bad_redshift"], z, 0.0)
-        dz, dzerr = table_z.distance_from_redshift(zz, np.where(use_z, zerr, 0.0),
-                                                   peculiar_velocity_kms=peculiar_velocity_kms)
-        dist = np.where(use_z, dz, dist)
-        derr = np.where(use_z, dzerr, derr)
+        dz, dzerr = table_z.distance_from_redshift(z[todo], zerr[todo], peculiar_velocity_kms=peculiar_velocity_kms)
+        dist = dist.copy() if "distance_mpc" in vals else dist
+        dist[todo] = dz
+        derr[todo] = dzerr
 
     if "weight" in present:
         w = vals["weight"]
@@ -400,16 +400,25 @@ def catalog_from_table(
     if ok_rows.size == 0:
         detail = "; ".join(f"{c} {REJECTION_REASONS[r]}" for r, c in counts.items())
         raise CatalogError(f"{source}: no usable galaxies among {n} rows ({detail})")
+    everyone = ok_rows.size == n
+
+    def pick(a):
+        # Catalogues are large: when every row is accepted, arrays we computed are used as they are;
+        # only views of the caller's table are copied (the caller may change the table later).
+        if not everyone:
+            return _readonly(a[ok_rows])
+        return _readonly(a if a.flags.owndata else np.array(a, copy=True))
+
     cat = Catalog(
-        galaxy_id=_readonly(gid[ok_rows]),
-        ra_deg=_readonly(ra[ok_rows]),
-        dec_deg=_readonly(dec[ok_rows]),
-        distance_mpc=_readonly(dist[ok_rows]),
-        distance_err_mpc=_readonly(derr[ok_rows]),
-        weight=_readonly(w[ok_rows]),
+        galaxy_id=pick(gid),
+        ra_deg=pick(ra),
+        dec_deg=pick(dec),
+        distance_mpc=pick(dist),
+        distance_err_mpc=pick(derr),
+        weight=pick(w),
         row=_readonly(ok_rows.astype(np.int64)),
-        from_redshift=_readonly(use_z[ok_rows]),
-        mag=_readonly(vals["mag"][ok_rows]) if "mag" in vals else None,
-        radius_arcsec=_readonly(vals["radius_arcsec"][ok_rows]) if "radius_arcsec" in vals else None,
+        from_redshift=pick(use_z),
+        mag=pick(vals["mag"]) if "mag" in vals else None,
+        radius_arcsec=pick(vals["radius_arcsec"]) if "radius_arcsec" in vals else None,
     )
     return cat, report

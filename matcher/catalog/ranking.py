@@ -287,17 +287,18 @@ def rank_hosts(
     if skymap.meta.get("OBJECT"):
         info["object"] = str(skymap.meta["OBJECT"])
     info.update(meta or {})
+    best_first = rows[order]
     return HostRanking(
-        galaxy_id=np.asarray(cat.galaxy_id)[rows][order],
-        ra_deg=np.asarray(cat.ra_deg)[rows][order],
-        dec_deg=np.asarray(cat.dec_deg)[rows][order],
+        galaxy_id=np.asarray(cat.galaxy_id)[best_first],
+        ra_deg=np.asarray(cat.ra_deg)[best_first],
+        dec_deg=np.asarray(cat.dec_deg)[best_first],
         distance_mpc=d[order],
         distance_err_mpc=de[order],
         weight=w[order],
         prob=prob,
         cum_prob=np.cumsum(prob),
         dp_dv=dp_dv,
-        rows=rows[order],
+        rows=best_first,
         p_outside_catalog=p_out,
         norm=total,
         fraction=float(fraction),
