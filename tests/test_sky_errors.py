@@ -143,3 +143,12 @@ def test_no_distance_layers():
     m = SkyMap.from_flat(np.ones(12) / 12, nest=True)
     with pytest.raises(SkyMapError, match="no distance layers"):
         m.distance_along(10.0, 10.0)
+
+
+def test_scalar_positions_give_scalars():
+    # A past bug: a single scalar position crashed the lookup.
+    m = SkyMap.from_flat(np.ones(12) / 12, nest=True, distmu=np.full(12, 100.0), distsigma=np.full(12, 20.0),
+                         distnorm=np.full(12, 1e-4))
+    assert np.ndim(m.pixel_index(10.0, 10.0)) == 0
+    assert np.isfinite(m.distance_along(10.0, 10.0)[0])
+    assert np.ndim(m.overlap_gaussian(10.0, 10.0, 1.0)) == 0

@@ -291,11 +291,14 @@ class SkyMap:
 
     def _index_of_fine(self, fine: np.ndarray) -> np.ndarray:
         table, shift = self._table
+        fine = np.asarray(fine, dtype=np.int64)
+        shape = fine.shape
+        fine = fine.reshape(-1)
         idx = table[fine >> shift].astype(np.int64)
         amb = idx < 0
         if amb.any():
             idx[amb] = np.searchsorted(self._starts, fine[amb], side="right") - 1
-        return idx
+        return idx.reshape(shape)
 
     def density(self, ra_deg, dec_deg) -> np.ndarray:
         """Probability density (sr**-1) at each position."""
