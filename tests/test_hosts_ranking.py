@@ -297,3 +297,16 @@ def test_p_outside_one_pixel_matches_quadrature(mu, sigma):
                          limit=400)[0]
     got = p_outside_catalog(model, [1.0], [mu], [sigma], [norm])
     assert got == pytest.approx(1.0 - num / den, rel=1e-5, abs=1e-9)
+
+
+def test_credible_count_is_the_smallest_set(calibration_setup):
+    skymap, index = calibration_setup
+    ranking = rank_hosts(skymap, index)
+    assert ranking.credible_count(0.0) == 0
+    for p in (0.2, 0.5, 0.9):
+        k = ranking.credible_count(p)
+        assert ranking.cum_prob[k - 1] >= p * ranking.p_in_catalog * (1 - 1e-12)
+        assert k == 1 or ranking.cum_prob[k - 2] < p * ranking.p_in_catalog
+    assert ranking.credible_count(1.0) <= len(ranking)
+    with pytest.raises(CatalogError, match="credible level"):
+        ranking.credible_count(1.5)

@@ -154,7 +154,7 @@ class HostRanking:
         """Number of galaxies in the smallest set holding ``p`` of the in-catalogue probability."""
         if not 0.0 <= p <= 1.0:
             raise CatalogError(f"credible level p={p!r} must lie in [0, 1]")
-        if len(self) == 0:
+        if len(self) == 0 or p == 0.0:
             return 0
         target = p * self.p_in_catalog
         return int(min(np.searchsorted(self.cum_prob, target * (1 - 1e-12), side="left") + 1, len(self)))
