@@ -384,9 +384,9 @@ class SkyMap:
         """
         ra, dec = check_radec(ra_deg, dec_deg)
         sigma = np.asarray(sigma_deg, dtype=np.float64)
-        ra, dec, sigma = (np.ascontiguousarray(a) for a in np.broadcast_arrays(ra, dec, sigma))
+        ra, dec, sigma = np.broadcast_arrays(ra, dec, sigma)
         shape = ra.shape
-        ra, dec, sigma = ra.ravel(), dec.ravel(), sigma.ravel()
+        ra, dec, sigma = (np.array(a, dtype=np.float64).reshape(-1) for a in (ra, dec, sigma))
         if np.any(~np.isfinite(sigma)) or np.any(sigma < 0):
             i = int(np.flatnonzero(~(np.isfinite(sigma) & (sigma >= 0)))[0])
             raise SkyMapError(self.source, f"position error #{i}: sigma_deg={float(sigma[i])!r} must be finite and >= 0")
