@@ -354,13 +354,13 @@ def catalog_from_table(
         reasons["bad_redshift"] |= use_z & ~(np.isfinite(z) & (z > 0) & (z <= Z_MAX))
         reasons["bad_redshift"] |= use_z & ((zerr < 0) | np.isinf(zerr))
     reasons["no_distance"] |= ~has_d & np.isnan(z)
-    todo = np.flatnonzero(use_z & ~reasons["bad_redshift"])
-    if todo.size:
+    need_z = np.flatnonzero(use_z & ~reasons["bad_redshift"])
+    if need_z.size:
         table_z = distances or planck18_table()
-        dz, dzerr = table_z.distance_from_redshift(z[todo], zerr[todo], peculiar_velocity_kms=peculiar_velocity_kms)
+        dz, dzerr = table_z.distance_from_redshift(z[need_z], zerr[need_z], peculiar_velocity_kms=peculiar_velocity_kms)
         dist = dist.copy() if "distance_mpc" in vals else dist
-        dist[todo] = dz
-        derr[todo] = dzerr
+        dist[need_z] = dz
+        derr[need_z] = dzerr
 
     if "weight" in present:
         w = vals["weight"]

@@ -77,9 +77,11 @@ class Completeness(Protocol):
     Any object with these two methods will do (a structural protocol).
     """
 
-    def __call__(self, distance_mpc) -> np.ndarray: ...
+    def __call__(self, distance_mpc) -> np.ndarray:
+        """Completeness in [0, 1] at luminosity distances ``distance_mpc`` (Mpc)."""
 
-    def to_dict(self) -> dict: ...
+    def to_dict(self) -> dict:
+        """The model as a dictionary (see :func:`completeness_from_dict`)."""
 
 
 @dataclass(frozen=True)
