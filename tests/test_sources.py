@@ -6,6 +6,8 @@ import json
 import os
 
 import pytest
+from hypothesis import example, given, settings
+from hypothesis import strategies as st
 
 from matcher.errors import InputError
 from matcher.store import Store
@@ -217,3 +219,26 @@ def test_build_from_options(tmp_path):
     write_archive(arc, [transient()])
     with build_source("archive", "arc", ArchiveOptions(arc), max_bytes=1000) as src:
         assert src.kind == "archive" and src.max_bytes == 1000 and len(src.poll()) == 1
+
+
+_LINE = st.one_of(st.just(b""), st.just(b"  "), st.binary(max_size=40).map(lambda b: b.replace(b"\n", b"").replace(b"\r", b"")),
+                  st.text(max_size=20).map(lambda t: line({"v": t})))
+
+
+@settings(max_examples=60, deadline=None)
+@given(lines=st.lists(_LINE, max_size=25), split=st.integers(0, 30), crlf=st.booleans(), last_newline=st.booleans())
+@example(lines=[b"a", b"", b"b"], split=1, crlf=True, last_newline=False)
+def test_archive_resume_at_any_point_reads_the_rest_exactly(tmp_path_factory, lines, split, crlf, last_newline):
+    """Reading k items, then resuming from the last item's position, gives exactly the full read."""
+    arc = tmp_path_factory.mktemp("arc") / "a.jsonl"
+    nl = b"\r\n" if crlf else b"\n"
+    arc.write_bytes(nl.join(lines) + (nl if last_newline and lines else b""))
+    with ArchiveSource("arc", arc, max_bytes=1024) as src:
+        full = [(i.data, i.origin.offset) for i in src.poll(1000)]
+    assert [d for d, _ in full] == [x for x in lines if x.strip()]
+    with ArchiveSource("arc", arc, max_bytes=1024) as src:
+        head = src.poll(split)
+    with ArchiveSource("arc", arc, max_bytes=1024) as src:
+        src.resume(positions_of(head))
+        tail = src.poll(1000)
+    assert [(i.data, i.origin.offset) for i in head + tail] == full
