@@ -1,6 +1,7 @@
 """The VOEvent codec: IVOA VOEvent 2.0 XML position/time/error notices as transient reports.
 
-VOEvent 2.0 is the IVOA Recommendation of 2011 (REC-VOEvent-2.0-20110711). What is read:
+VOEvent 2.0 is the IVOA Recommendation of 2011 (REC-VOEvent-2.0-20110711; the identifier is from
+memory). What is read:
 
 - the root ``VOEvent`` element in the namespace ``http://www.ivoa.net/xml/VOEvent/v2.0``,
   its ``ivorn`` (the event's identifier) and ``role`` (``observation``, ``prediction``,
