@@ -44,7 +44,7 @@ from matcher.catalog.completeness import (
     completeness_from_dict,
     p_outside_catalog,
 )
-from matcher.catalog.cosmology import DistanceTable, planck18_table
+from matcher.cosmology import DistanceTable, planck18_table
 from matcher.catalog.index import INDEX_ORDER, GalaxyIndex, IndexHeader, build_index, fine_pixels
 from matcher.catalog.indexio import (
     StaleIndexError,

@@ -32,7 +32,7 @@ from typing import Mapping
 import numpy as np
 
 from matcher.catalog.chance import chance_coincidence, effective_radius_arcsec, number_density_berger
-from matcher.catalog.cosmology import DistanceTable, planck18_table
+from matcher.cosmology import DistanceTable, planck18_table
 from matcher.catalog.index import GalaxyIndex
 from matcher.catalog.ranking import HostRanking, host_weight
 from matcher.errors import CatalogError

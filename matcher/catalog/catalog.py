@@ -36,8 +36,11 @@ from typing import Mapping
 import numpy as np
 
 from matcher.catalog.columns import COLUMN_KEYS, ColumnMap
-from matcher.catalog.cosmology import Z_MAX, DistanceTable, planck18_table
+from matcher.cosmology import DistanceTable, planck18_table
 from matcher.errors import CatalogError
+
+#: Catalogue redshifts beyond this are rejected as implausible for a host galaxy.
+CATALOG_Z_MAX = 10.0
 
 __all__ = ["Catalog", "LoadReport", "catalog_from_table", "DEFAULT_PECULIAR_VELOCITY_KMS", "REJECTION_REASONS"]
 
@@ -351,7 +354,7 @@ def catalog_from_table(
     zerr = vals.get("redshift_err", np.full(n, np.nan))
     use_z = ~has_d & ~np.isnan(z)
     with np.errstate(invalid="ignore"):
-        reasons["bad_redshift"] |= use_z & ~(np.isfinite(z) & (z > 0) & (z <= Z_MAX))
+        reasons["bad_redshift"] |= use_z & ~(np.isfinite(z) & (z > 0) & (z <= CATALOG_Z_MAX))
         reasons["bad_redshift"] |= use_z & ((zerr < 0) | np.isinf(zerr))
     reasons["no_distance"] |= ~has_d & np.isnan(z)
     need_z = np.flatnonzero(use_z & ~reasons["bad_redshift"])

@@ -27,7 +27,7 @@ import math
 import numpy as np
 
 from matcher.catalog.completeness import NORBERG02_ALPHA, NORBERG02_M_STAR
-from matcher.catalog.cosmology import DistanceTable, planck18_table
+from matcher.cosmology import DistanceTable, planck18_table
 
 __all__ = ["synthetic_catalog", "sample_schechter", "M_SUN_B"]
 

@@ -33,8 +33,8 @@ __all__ = ["DistanceTable", "planck18_table", "SPEED_OF_LIGHT_KMS", "Z_MAX"]
 
 #: Speed of light, km/s (exact, SI definition).
 SPEED_OF_LIGHT_KMS = 299_792.458
-#: Deepest redshift tabulated.
-Z_MAX = 10.0
+#: Deepest redshift tabulated (the message schema accepts redshifts up to 20).
+Z_MAX = 20.0
 _GRID = 8193
 
 
