@@ -18,15 +18,14 @@ JSON keys (``--json``) are a contract:
 
 from __future__ import annotations
 
-import base64
-import json
 import math
 import warnings
 from pathlib import Path
 
+from matcher.commands._inputs import load_alert_or_map, read_json
 from matcher.commands._output import console, print_json
 from matcher.commands.catalog import add_catalog_options, columns_from_args, completeness_from_args
-from matcher.errors import InputError
+from matcher.errors import InputError, MessageError
 
 __all__ = ["register", "load_localization", "write_ranking"]
 
@@ -50,45 +49,11 @@ def register(sub) -> None:
     p.set_defaults(func=_run)
 
 
-def _read_json(path: Path):
-    try:
-        return json.loads(path.read_text())
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise InputError(f"{path}: not valid JSON: {exc}") from None
-
-
 def load_localization(path):
     """``(SkyMap, meta)`` from a GW alert JSON file or a FITS map."""
-    from matcher.sky import read_skymap, skymap_from_bytes
-    from matcher.streams.messages import GWAlert, message_from_fields
-
-    p = Path(path)
-    try:
-        with p.open("rb") as fh:
-            head = fh.read(64).lstrip()
-    except OSError as exc:
-        raise InputError(f"{p}: cannot read: {exc.strerror or exc}") from None
-    if not head.startswith(b"{"):
-        return read_skymap(p), {}
-    msg = message_from_fields(_read_json(p), base_dir=str(p.parent))
-    if not isinstance(msg, GWAlert):
-        raise InputError(f"{p}: is a {msg.kind} message, not a GW alert")
-    meta = {"event_id": msg.event_id, "revision": msg.revision}
-    if msg.state == "withdrawn" or msg.localization is None:
-        raise InputError(f"{p}: event {msg.event_id} revision {msg.revision} is withdrawn; it has no localization")
-    loc = msg.localization
-    if loc.fits_base64:
-        try:
-            data = base64.b64decode(loc.fits_base64, validate=True)
-        except ValueError:
-            raise InputError(f"{p}: localization.fits_base64 is not valid base64") from None
-        return skymap_from_bytes(data, source=f"{p}:localization"), meta
-    if loc.url:
-        raise InputError(f"{p}: the localization is a URL ({loc.url}); this command reads local files only: "
-                         f"download the map and pass its path")
-    return read_skymap(loc.resolved_path()), meta
+    alert, skymap = load_alert_or_map(path)
+    meta = {} if alert is None else {"event_id": alert.event_id, "revision": alert.revision}
+    return skymap, meta
 
 
 def write_ranking(table, path) -> None:
@@ -116,7 +81,10 @@ def _transient_position(args):
         raise InputError("give --transient or --at, not both")
     if args.transient:
         p = Path(args.transient)
-        msg = message_from_fields(_read_json(p), base_dir=str(p.parent))
+        try:
+            msg = message_from_fields(read_json(p), base_dir=str(p.resolve().parent))
+        except MessageError as exc:
+            raise InputError(f"{p}: {exc}") from None
         if not isinstance(msg, TransientReport):
             raise InputError(f"{p}: is a {msg.kind} message, not a transient report")
         return msg.transient_id, msg.ra_deg, msg.dec_deg, msg.pos_err_deg or 0.0

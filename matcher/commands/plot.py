@@ -20,13 +20,11 @@ galaxy_id, ra_deg, dec_deg, p_host, distance_mpc).
 
 from __future__ import annotations
 
-import base64
-import binascii
-import json
 from pathlib import Path
 
+from matcher.commands._inputs import load_alert_or_map
 from matcher.commands._output import print_json
-from matcher.errors import InputError, MessageError, SkyMapError
+from matcher.errors import InputError
 
 __all__ = ["register", "run", "load_source"]
 
@@ -57,57 +55,9 @@ def register(sub) -> None:
     p.set_defaults(func=run)
 
 
-def _read_json(path: Path):
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
-    except UnicodeDecodeError:
-        raise InputError(f"{path}: is not UTF-8 text") from None
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno} column {exc.colno})") from None
-
-
 def load_source(path):
-    """``(alert or None, SkyMap)`` from a GW alert JSON file or a localization FITS file.
-
-    Raises
-    ------
-    InputError
-        Unreadable file, invalid alert, a withdrawn revision, a URL localization.
-    """
-    from matcher.sky import read_skymap, skymap_from_bytes
-    from matcher.streams.messages import GWAlert, message_from_fields
-
-    p = Path(path)
-    try:
-        with p.open("rb") as fh:
-            head = fh.read(256).lstrip()
-    except OSError as exc:
-        raise InputError(f"{p}: cannot read: {exc.strerror or exc}") from None
-    if not head.startswith(b"{"):
-        return None, read_skymap(p)
-    try:
-        msg = message_from_fields(_read_json(p), codec="native", base_dir=str(p.resolve().parent))
-    except MessageError as exc:
-        raise InputError(f"{p}: {exc}") from None
-    if not isinstance(msg, GWAlert):
-        raise InputError(f"{p}: is a {msg.kind} message, not a GW alert")
-    if msg.state == "withdrawn" or msg.localization is None:
-        raise InputError(f"{p}: event {msg.event_id} revision {msg.revision} is withdrawn; it has no localization")
-    loc = msg.localization
-    if loc.fits_base64 is not None:
-        try:
-            data = base64.b64decode(loc.fits_base64, validate=True)
-        except (binascii.Error, ValueError) as exc:
-            raise SkyMapError(f"{p} localization.fits_base64", f"is not valid base64: {exc}") from None
-        return msg, skymap_from_bytes(data, source=f"{p} localization.fits_base64")
-    if loc.url is not None:
-        raise InputError(f"{p}: the localization is a URL ({loc.url}); `matcher plot` reads local files only: "
-                         "download the map and give its path")
-    return msg, read_skymap(loc.resolved_path())
+    """``(alert or None, SkyMap)`` from a GW alert JSON file or a localization FITS file."""
+    return load_alert_or_map(path)
 
 
 def _out_format(out: Path) -> str:
@@ -143,7 +93,7 @@ def run(args) -> int:
     alert, skymap = load_source(args.source)
     candidates = []
     if args.transients:
-        from matcher.commands.score import load_reports
+        from matcher.commands._inputs import load_reports
 
         reports, report_maps = load_reports(args.transients)
         scores = None

@@ -10,16 +10,9 @@ outside every window are listed (with odds 0) only with ``--all``.
 
 from __future__ import annotations
 
-import base64
-import binascii
-import json
-from pathlib import Path
-
 from matcher.coincidence import default_classes, load_classes_file, score_reports
+from matcher.commands._inputs import load_alert, load_reports
 from matcher.commands._output import console, print_json
-from matcher.errors import InputError, MessageError, SkyMapError
-from matcher.sky import SkyMap, read_skymap
-from matcher.streams.messages import GWAlert, TransientReport, message_from_fields
 
 __all__ = ["register", "run", "load_alert", "load_reports"]
 
@@ -37,74 +30,6 @@ def register(sub) -> None:
     p.add_argument("--json", action="store_true", help="print a JSON array (best first)")
     p.add_argument("--all", action="store_true", help="also list reports outside every window (odds 0)")
     p.set_defaults(func=run)
-
-
-def _read_localization(loc, who: str) -> SkyMap:
-    if loc.path is not None:
-        return read_skymap(loc.resolved_path())
-    if loc.fits_base64 is not None:
-        try:
-            data = base64.b64decode(loc.fits_base64, validate=True)
-        except (binascii.Error, ValueError) as exc:
-            raise SkyMapError(f"{who} localization.fits_base64", f"is not valid base64: {exc}") from None
-        return read_skymap(data, source=f"{who} localization.fits_base64")
-    raise SkyMapError(f"{who} localization.url", f"{loc.url}: `matcher score` reads local files and base64 "
-                      "only; download the map and give its path")
-
-
-def _json_object(text: str, where: str):
-    try:
-        return json.loads(text)
-    except json.JSONDecodeError as exc:
-        raise InputError(f"{where}: not valid JSON ({exc.msg} at column {exc.colno})") from None
-
-
-def load_alert(path) -> tuple[GWAlert, SkyMap]:
-    """Read and validate the alert file and its localization."""
-    p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise InputError(f"{p}: cannot read: {exc.strerror or exc}") from None
-    try:
-        msg = message_from_fields(_json_object(text, str(p)), codec="native", base_dir=str(p.resolve().parent))
-    except MessageError as exc:
-        raise InputError(f"{p}: {exc}") from None
-    if not isinstance(msg, GWAlert):
-        raise InputError(f"{p}: expected a gw_alert message, got type {msg.kind!r}")
-    if msg.state == "withdrawn" or msg.localization is None:
-        raise InputError(f"{p}: event {msg.event_id} revision {msg.revision} is withdrawn; nothing to score")
-    return msg, _read_localization(msg.localization, f"event {msg.event_id}")
-
-
-def load_reports(path) -> tuple[list[TransientReport], dict[str, SkyMap]]:
-    """Read and validate a JSON Lines file of transient reports (blank lines are skipped)."""
-    p = Path(path)
-    try:
-        lines = p.read_text(encoding="utf-8").splitlines()
-    except OSError as exc:
-        raise InputError(f"{p}: cannot read: {exc.strerror or exc}") from None
-    base = str(p.resolve().parent)
-    reports: list[TransientReport] = []
-    maps: dict[str, SkyMap] = {}
-    seen: dict[str, int] = {}
-    for no, line in enumerate(lines, 1):
-        if not line.strip():
-            continue
-        where = f"{p}:{no}"
-        try:
-            msg = message_from_fields(_json_object(line, where), codec="native", base_dir=base)
-        except MessageError as exc:
-            raise InputError(f"{where}: {exc}") from None
-        if not isinstance(msg, TransientReport):
-            raise InputError(f"{where}: expected a transient message, got type {msg.kind!r}")
-        if msg.transient_id in seen:
-            raise InputError(f"{where}: transient {msg.transient_id} already given on line {seen[msg.transient_id]}")
-        seen[msg.transient_id] = no
-        if msg.localization is not None:
-            maps[msg.transient_id] = _read_localization(msg.localization, f"{where} transient {msg.transient_id}")
-        reports.append(msg)
-    return reports, maps
 
 
 def _fmt(x: float, spec: str = ".3g") -> str:
