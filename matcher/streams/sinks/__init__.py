@@ -12,6 +12,7 @@ from matcher.streams.sinks.base import (
     sink_kinds,
 )
 from matcher.streams.sinks.jsonl import JsonlOptions, JsonlSink
+from matcher.streams.sinks.kafka import KafkaSink, KafkaSinkOptions  # registers kind kafka
 from matcher.streams.sinks.sqlite import SqliteSink, SqliteSinkOptions
 
 __all__ = [
@@ -28,4 +29,6 @@ __all__ = [
     "JsonlOptions",
     "SqliteSink",
     "SqliteSinkOptions",
+    "KafkaSink",
+    "KafkaSinkOptions",
 ]

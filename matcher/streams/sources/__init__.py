@@ -11,6 +11,7 @@ from matcher.streams.sources.base import (
     source_kinds,
 )
 from matcher.streams.sources.inbox import InboxOptions, InboxSource
+from matcher.streams.sources.kafka import KafkaSource, KafkaSourceOptions  # registers kind kafka
 
 __all__ = [
     "Source",
@@ -24,4 +25,6 @@ __all__ = [
     "InboxOptions",
     "ArchiveSource",
     "ArchiveOptions",
+    "KafkaSource",
+    "KafkaSourceOptions",
 ]
