@@ -204,6 +204,8 @@ class StoredRevision:
     event_state : str
         The state of the event's current revision.
     expires_at : float or None, GPS s
+    received_at : float or None, Unix s
+        When the revision's message was received.
     """
 
     alert: GWAlert
@@ -212,6 +214,7 @@ class StoredRevision:
     is_current: bool
     event_state: str
     expires_at: float | None
+    received_at: float | None = None
 
 
 @dataclass(frozen=True)
@@ -716,14 +719,15 @@ class Store:
 
     _REV_SQL = ("SELECT r.event_id, r.revision, r.message_id, r.state, r.merger_time, r.merger_time_iso,"
                 " r.far_per_year, r.p_astro, r.source_probs, r.localization_sha, r.localization_ref, r.extra,"
-                " e.revision, e.state, e.expires_at FROM revisions r JOIN events e ON e.event_id = r.event_id")
+                " e.revision, e.state, e.expires_at, r.received_at"
+                " FROM revisions r JOIN events e ON e.event_id = r.event_id")
 
     def _revision(self, row) -> StoredRevision:
-        (eid, rev, mid, state, t, t_iso, far, pa, probs, sha, ref, extra, cur_rev, ev_state, exp) = row
+        (eid, rev, mid, state, t, t_iso, far, pa, probs, sha, ref, extra, cur_rev, ev_state, exp, received) = row
         loc = _loc_from_ref(ref, self.localization_data(sha) if (sha and ref and "fits_base64" in ref) else None)
         alert = GWAlert(eid, rev, state, t, t_iso, far, pa, None if probs is None else json.loads(probs), loc,
                         json.loads(extra))
-        return StoredRevision(alert, sha, mid, rev == cur_rev, ev_state, exp)
+        return StoredRevision(alert, sha, mid, rev == cur_rev, ev_state, exp, received)
 
     def active_events(self, now: float | None = None) -> list[StoredRevision]:
         """Current revisions of events not withdrawn and not expired at ``now`` (GPS s; ``None``: ignore expiry).
