@@ -23,6 +23,7 @@ Sections::
       NAME: {env: VARIABLE}          # or {file: PATH}, a file only its owner can read
     classes: {...}                   # counterpart classes (matcher.coincidence.parse_classes)
     catalog: {...}                   # galaxy catalogue settings, kept as given for matcher.catalog
+    reports: {...}                   # per-event report writers, kept as given for matcher.service
 
 The ``classes`` section is parsed by :func:`matcher.coincidence.parse_classes` when
 the configuration is loaded (so a bad class fails early); without one,
@@ -68,7 +69,8 @@ __all__ = [
     "freeze",
 ]
 
-_TOP_KEYS = ("state_dir", "store", "sources", "sinks", "limits", "service", "secrets", "classes", "catalog")
+_TOP_KEYS = ("state_dir", "store", "sources", "sinks", "limits", "service", "secrets", "classes", "catalog",
+             "reports")
 
 
 def freeze(value: Any) -> Any:
@@ -216,6 +218,7 @@ class Config:
     classes_raw: Mapping[str, Any] | None
     catalog_raw: Mapping[str, Any] | None
     _classes: Any = field(default=None, repr=False, compare=False)
+    reports_raw: Mapping[str, Any] | None = None
 
     def classes(self):
         """The counterpart classes: this file's ``classes`` section, or the packaged defaults."""
@@ -385,10 +388,14 @@ def config_from_mapping(raw: Any, *, base_dir=".", path: Path | None = None) -> 
     catalog_raw = raw.get("catalog")
     if catalog_raw is not None and not isinstance(catalog_raw, Mapping):
         raise ConfigError("catalog", f"must be a mapping, got {type(catalog_raw).__name__}")
+    reports_raw = raw.get("reports")
+    if reports_raw is not None and not isinstance(reports_raw, Mapping):
+        raise ConfigError("reports", f"must be a mapping, got {type(reports_raw).__name__}")
 
     return Config(path, state_dir, store_path, MappingProxyType(sources), MappingProxyType(sinks), limits, service,
                   MappingProxyType(secrets), None if classes_raw is None else freeze(classes_raw),
-                  None if catalog_raw is None else freeze(catalog_raw), parsed_classes)
+                  None if catalog_raw is None else freeze(catalog_raw), parsed_classes,
+                  None if reports_raw is None else freeze(reports_raw))
 
 
 def load_config(path=None) -> Config:

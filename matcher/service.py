@@ -1,0 +1,385 @@
+"""The service loop: messages in, ranked matches out.
+
+One batch at a time, from one source at a time, in this order::
+
+    items   = source.poll(batch_size, poll_timeout_s)   # 1. poll: raw bytes, origin, position
+    decoded = [decode_item(item) for item in items]     # 2. decode: a message, or a reason to quarantine
+    with store.transaction() as tx:                     # 3. store, one transaction per batch:
+        matcher.apply(tx, store, decoded)               #    messages, quarantine, event state,
+                                                        #    results under their keys, outbox rows
+        tx.set_positions(source.name, positions)        #    and where the source resumes
+    source.commit(decoded)                              # 4. commit the source (move files, commit offsets)
+    for publisher in publishers: publisher.publish()    # 5. publish: outbox → sinks, then mark sent
+    for writer in report_writers: writer.on_revision()  # 6. reports of events that changed
+
+Nothing reaches a sink before the store has committed it, and nothing is finished at
+the source before that either: a crash anywhere re-delivers at most the last batch,
+which the store recognises (same bytes, same origin) or which was rolled back.
+
+The loop knows sources, codecs and sinks only through their protocols and registries
+(:mod:`matcher.streams.sources`, :mod:`matcher.streams.codecs`,
+:mod:`matcher.streams.sinks`): a Kafka source kind or sink kind registered there is
+configured by name and runs here unchanged. :func:`register_report_writer` is the hook
+for writers of per-event reports (``reports:`` in the configuration).
+
+Stopping: :meth:`Service.request_stop` (called by the signal handler that
+``matcher listen`` installs) lets the current batch finish; the loop then publishes
+once more and closes everything. On start the matcher rebuilds its active events
+from the store.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Mapping, Protocol, Sequence
+
+from matcher.errors import ConfigError, MatcherError, MatcherWarning
+from matcher.keycheck import check_keys, get_int, get_number, get_path, get_str
+from matcher.lifecycle import ApplyStats, Matcher, MatchSettings
+from matcher.store import Store
+from matcher.streams.intake import decode_item
+from matcher.streams.raw import positions_of
+from matcher.streams.sinks import Publisher, Sink
+from matcher.streams.sources import Source
+
+__all__ = [
+    "Service",
+    "ServiceStats",
+    "ReportWriter",
+    "register_report_writer",
+    "report_writer_kinds",
+    "catalog_settings",
+    "open_catalog",
+]
+
+
+class ReportWriter(Protocol):
+    """Writes a report of an event after a batch changed it (``reports.NAME`` in the configuration).
+
+    ``on_revision`` runs after the batch is durable and published; ``state`` is the
+    revision's state (``issued``, ``revised`` or ``withdrawn``). A writer that fails
+    raises :class:`~matcher.errors.MatcherError` or ``OSError``: the service warns and
+    goes on (a report never stops the matching).
+    """
+
+    name: str
+
+    def on_revision(self, store: Store, event_id: str, revision: int, state: str) -> None: ...
+
+    def close(self) -> None: ...
+
+
+#: kind → ``build(name, options: Mapping, base_dir: Path) -> ReportWriter``
+_REPORT_KINDS: dict[str, Callable[[str, Mapping[str, Any], Path], ReportWriter]] = {}
+
+
+def register_report_writer(kind: str, build: Callable[[str, Mapping[str, Any], Path], ReportWriter]) -> None:
+    """Make ``reports.NAME: {kind: KIND, ...}`` available; ``build`` validates the options
+    (raising ``ConfigError`` with the key path ``reports.NAME....``)."""
+    _REPORT_KINDS[kind] = build
+
+
+def report_writer_kinds() -> tuple[str, ...]:
+    return tuple(sorted(_REPORT_KINDS))
+
+
+def _report_writers(raw: Mapping[str, Any] | None, base_dir: Path) -> list[ReportWriter]:
+    if not raw:
+        return []
+    if not isinstance(raw, Mapping):
+        raise ConfigError("reports", f"must be a mapping of report names, got {type(raw).__name__}")
+    out = []
+    for name, spec in raw.items():
+        kp = f"reports.{name}"
+        if not isinstance(spec, Mapping) or not isinstance(spec.get("kind"), str):
+            raise ConfigError(f"{kp}.kind", "is required: the kind of report writer")
+        build = _REPORT_KINDS.get(spec["kind"])
+        if build is None:
+            known = ", ".join(report_writer_kinds()) or "none are installed"
+            raise ConfigError(f"{kp}.kind", f"unknown report writer {spec['kind']!r} (known: {known})")
+        out.append(build(str(name), {k: v for k, v in spec.items() if k != "kind"}, base_dir))
+    return out
+
+
+@dataclass(frozen=True)
+class CatalogSettings:
+    """``catalog:`` of the configuration, as the service uses it.
+
+    Attributes
+    ----------
+    path : Path or None
+        Catalogue file or index directory (None: no host galaxies).
+    columns : mapping or None
+        Column map for a catalogue file.
+    format : str or None
+    hosts : int
+        Galaxies published per revision (``hosts`` outputs and ``summary.json``).
+    max_p_cc, max_offset_kpc : float
+        Host association options (see :func:`matcher.catalog.hosts_for_transient`).
+    """
+
+    path: Path | None = None
+    columns: Mapping[str, str] | None = None
+    format: str | None = None
+    hosts: int = 20
+    max_p_cc: float = 0.1
+    max_offset_kpc: float = 50.0
+
+
+def catalog_settings(raw: Mapping[str, Any] | None, base_dir: Path) -> CatalogSettings:
+    """Validate the ``catalog`` section (key paths in errors); relative paths against ``base_dir``."""
+    if raw is None:
+        return CatalogSettings()
+    kp = "catalog"
+    raw = check_keys(raw, ("path", "columns", "format", "hosts", "max_p_cc", "max_offset_kpc"), kp)
+    cols = raw.get("columns")
+    if cols is not None and (not isinstance(cols, Mapping) or not all(isinstance(v, str) for v in cols.values())):
+        raise ConfigError(f"{kp}.columns", "must map our column names to the catalogue's (strings)")
+    return CatalogSettings(
+        path=get_path(raw, "path", kp, base_dir),
+        columns=None if cols is None else {str(k): v for k, v in cols.items()},
+        format=get_str(raw, "format", kp),
+        hosts=get_int(raw, "hosts", kp, 20, lo=0),
+        max_p_cc=get_number(raw, "max_p_cc", kp, 0.1, lo=0.0, hi=1.0),
+        max_offset_kpc=get_number(raw, "max_offset_kpc", kp, 50.0, lo=0.0, lo_open=True),
+    )
+
+
+def open_catalog(settings: CatalogSettings):
+    """The galaxy index for ``settings`` (None without a catalogue path)."""
+    if settings.path is None:
+        return None
+    from matcher.catalog import open_galaxy_index
+
+    return open_galaxy_index(settings.path, columns=settings.columns, fmt=settings.format)
+
+
+@dataclass
+class ServiceStats:
+    """Running totals of a service, and seconds spent in each step of the loop."""
+
+    started: float = field(default_factory=time.monotonic)
+    batches: int = 0
+    totals: ApplyStats = field(default_factory=ApplyStats)
+    seconds: dict = field(default_factory=lambda: dict.fromkeys(("poll", "decode", "store", "commit", "publish",
+                                                                 "reports"), 0.0))
+    last_batch_at: float | None = None
+    recent: list = field(default_factory=list)  # (monotonic time, messages) of recent batches
+
+    def rate(self, window_s: float = 10.0) -> float:
+        """Messages per second over the last ``window_s`` seconds."""
+        now = time.monotonic()
+        pts = [(t, n) for t, n in self.recent if now - t <= window_s]
+        if not pts:
+            return 0.0
+        span = max(now - min(t for t, _ in pts), 1e-3)
+        return sum(n for _, n in pts) / span
+
+
+class Service:
+    """Run the loop for a configuration (see the module docstring).
+
+    Parameters
+    ----------
+    config : matcher.config.Config
+    sources : sequence of Source, optional
+        Sources to read (default: every configured source).
+    sinks : sequence of Sink, optional
+        Sinks to publish to (default: every configured sink); ``extra_sinks`` are added.
+    extra_sinks : sequence of Sink
+    store_path : path, optional
+        Overrides the configured store.
+    index : GalaxyIndex, optional
+        Overrides the configured catalogue.
+    settings : MatchSettings, optional
+    base_dir : Path, optional
+        Folder relative paths of ``catalog`` and ``reports`` resolve against (default: the
+        configuration file's folder, or the current one).
+    on_batch : callable, optional
+        ``on_batch(service, stats_of_batch)`` after each batch (dashboards, progress).
+    """
+
+    def __init__(self, config, *, sources: Sequence[Source] | None = None, sinks: Sequence[Sink] | None = None,
+                 extra_sinks: Sequence[Sink] = (), store_path=None, index=None, settings: MatchSettings | None = None,
+                 base_dir=None, on_batch: Callable[["Service", ApplyStats], None] | None = None):
+        self.config = config
+        base = Path(base_dir) if base_dir is not None else (
+            config.path.parent if config.path is not None else Path.cwd())
+        self.catalog = catalog_settings(config.catalog_raw, base)
+        self._stop = threading.Event()
+        self.on_batch = on_batch
+        self.stats = ServiceStats()
+        self.store = Store(store_path or config.store_path)
+        self.sources: list[Source] = []
+        self.publishers: list[Publisher] = []
+        self.writers: list[ReportWriter] = []
+        try:
+            self.writers = _report_writers(getattr(config, "reports_raw", None), base)
+            if index is None:
+                index = open_catalog(self.catalog)
+            self.index = index
+            if settings is None:
+                settings = MatchSettings(hosts_published=self.catalog.hosts,
+                                         host_options={"max_p_cc": self.catalog.max_p_cc,
+                                                       "max_offset_kpc": self.catalog.max_offset_kpc})
+            self.matcher = Matcher(config.classes(), index=index, settings=settings,
+                                   localization_max_bytes=config.limits.localization_max_bytes)
+            self.matcher.rebuild(self.store)
+            chosen = list(sources) if sources is not None else [config.source(n) for n in config.sources]
+            self._codecs = {}
+            for src in chosen:
+                self._codecs[src.name] = (config.codec(src.name) if src.name in config.sources
+                                          else _native(config.limits.message_max_bytes))
+                src.resume(self.store.positions(src.name))
+                self.sources.append(src)
+            chosen_sinks = list(sinks) if sinks is not None else [config.sink(n) for n in config.sinks]
+            for sink in [*chosen_sinks, *extra_sinks]:
+                self.publishers.append(Publisher(self.store, sink))
+        except BaseException:
+            self._close_parts()
+            raise
+        self._limits = config.limits.localization()
+        self._next = 0
+        self.publish()  # whatever a crash left in the outbox goes out first
+
+    # ---------------------------------------------------------------- control
+    def request_stop(self) -> None:
+        """Stop after the current batch (safe to call from a signal handler)."""
+        self._stop.set()
+
+    @property
+    def stopping(self) -> bool:
+        return self._stop.is_set()
+
+    @property
+    def finished(self) -> bool:
+        """Every source is finished (all archives read to the end)."""
+        return all(s.finished for s in self.sources)
+
+    # ------------------------------------------------------------------- loop
+    def step(self, source: Source | None = None, *, timeout_s: float | None = None) -> ApplyStats | None:
+        """Run one batch from ``source`` (default: the next source in turn); None when it had nothing."""
+        if source is None:
+            live = [s for s in self.sources if not s.finished] or self.sources
+            source = live[self._next % len(live)]
+            self._next += 1
+        svc = self.config.service
+        sec = self.stats.seconds
+        t0 = time.perf_counter()
+        items = source.poll(svc.batch_size, svc.poll_timeout_s if timeout_s is None else timeout_s)  # 1. poll
+        t1 = time.perf_counter()
+        sec["poll"] += t1 - t0
+        if not items:
+            return None
+        codec = self._codecs[source.name]
+        decoded = self.matcher.check([decode_item(it, codec, self._limits) for it in items])  # 2. decode
+        t2 = time.perf_counter()
+        sec["decode"] += t2 - t1
+        try:
+            with self.store.transaction() as tx:  # 3. store: one transaction for the whole batch
+                stats = self.matcher.apply(tx, self.store, decoded)
+                tx.set_positions(source.name, positions_of(items))
+        except BaseException:
+            # The transaction rolled back: the in-memory state may hold part of the batch.
+            self.matcher.rebuild(self.store)
+            raise
+        t3 = time.perf_counter()
+        sec["store"] += t3 - t2
+        source.commit(decoded)  # 4. commit the source, only now
+        t4 = time.perf_counter()
+        sec["commit"] += t4 - t3
+        self.publish()  # 5. publish the outbox
+        t5 = time.perf_counter()
+        sec["publish"] += t5 - t4
+        self._write_reports(stats)  # 6. reports of events that changed
+        sec["reports"] += time.perf_counter() - t5
+        self.stats.batches += 1
+        self.stats.totals.add(stats)
+        now = time.monotonic()
+        self.stats.last_batch_at = now
+        self.stats.recent.append((now, stats.messages))
+        if len(self.stats.recent) > 256:
+            del self.stats.recent[:128]
+        if self.on_batch is not None:
+            self.on_batch(self, stats)
+        return stats
+
+    def run(self, *, until_finished: bool = False, max_batches: int | None = None) -> ServiceStats:
+        """Loop until stopped (or, with ``until_finished``, until every source is finished)."""
+        done = 0
+        while not self._stop.is_set():
+            if until_finished and self.finished:
+                break
+            if max_batches is not None and done >= max_batches:
+                break
+            idle_all = True
+            for _ in range(len(self.sources)):
+                if self._stop.is_set():
+                    break
+                # With several sources, do not wait on one while another may have input.
+                wait = None if len(self.sources) == 1 else 0.0
+                if self.step(timeout_s=wait) is not None:
+                    idle_all = False
+                    done += 1
+            if idle_all and len(self.sources) > 1 and not (until_finished and self.finished):
+                self._stop.wait(self.config.service.poll_timeout_s)
+            elif idle_all and self.on_batch is not None:
+                self.on_batch(self, ApplyStats())
+        return self.stats
+
+    def publish(self) -> int:
+        """Copy pending outbox rows to every sink (each row durable before its cursor moves)."""
+        return sum(p.publish() for p in self.publishers)
+
+    def _write_reports(self, stats: ApplyStats) -> None:
+        if not self.writers or not stats.events_changed:
+            return
+        for event_id, revision, state in stats.events_changed:
+            for w in self.writers:
+                try:
+                    w.on_revision(self.store, event_id, revision, state)
+                except (MatcherError, OSError) as exc:
+                    warnings.warn(f"report {w.name}: event {event_id} revision {revision}: {exc}",
+                                  MatcherWarning, stacklevel=2)
+
+    # -------------------------------------------------------------- shutdown
+    def _close_parts(self) -> None:
+        for p in self.publishers:
+            p.close()
+        for s in self.sources:
+            s.close()
+        for w in self.writers:
+            w.close()
+        self.store.close()
+
+    def close(self) -> None:
+        """Publish once more, then close sinks, sources, report writers and the store."""
+        try:
+            self.publish()
+        finally:
+            self._close_parts()
+
+    def __enter__(self) -> "Service":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # ------------------------------------------------------------- reading
+    def quarantine_count(self) -> int:
+        return self.store.counts()["quarantine"]
+
+
+def _native(max_bytes: int):
+    from matcher.streams.codecs import make_codec
+
+    return make_codec("native", max_bytes=max_bytes)
+
+
+def _isfinite(x) -> bool:
+    return isinstance(x, (int, float)) and math.isfinite(x)
