@@ -212,34 +212,39 @@ def _plot_class(ax_eff, ax_cal, cd: ClassData, sc: ClassScan) -> None:
         ax_eff.plot(x, y, color=pal.SKY_CMAP(shades[rank]), linestyle=styles[rank % 4],
                     linewidth=2.2 if j == sc.recommended else 1.3, label=label)
     ax_eff.axvline(sc.target, color=pal.INK, linestyle=":", linewidth=1.0)
-    ax_eff.text(sc.target, 1.02, " target", color=pal.INK, fontsize=8, va="bottom", ha="left",
-                transform=ax_eff.get_xaxis_transform())
+    ax_eff.annotate(f"target {sc.target:g}", (sc.target, 0.0), xycoords=("data", "axes fraction"),
+                    xytext=(3, 4), textcoords="offset points", fontsize=8, color=pal.INK)
     if sc.recommended >= 0:
         j = sc.recommended
         i = int(sc.target_index[j])
         c = pal.CANDIDATE
         ax_eff.scatter([max(sc.false_per_event[j, i], floor)], [sc.efficiency[j, i]], marker=c["marker"],
                        s=c["size"], facecolor=c["face"], edgecolor=c["edge"], zorder=5,
-                       label=f"recommended: {format_window(*sc.windows_s[j])}, efficiency "
+                       label=f"recommended: {format_window(*sc.windows_s[j])}\nefficiency "
                              f"{sc.efficiency[j, i]:.2f} ± {sc.efficiency_err_at_target:.2f}")
+    top = float(np.nanmax(sc.efficiency)) if np.isfinite(sc.efficiency).any() else 1.0
     ax_eff.set_xscale("log")
-    ax_eff.set_ylim(-0.02, 1.02)
-    ax_eff.set_xlabel(f"false matches per event (time slides; floor {floor:.1g} = none seen)")
+    ax_eff.set_ylim(-0.01, min(1.02, 1.15 * top + 0.03))
+    ax_eff.set_xlabel(f"false matches per event (time slides; none seen is drawn at {floor:.1g})")
     ax_eff.set_ylabel("efficiency (fraction of injections found)")
     ax_eff.set_title(f"{cd.name}: {sc.alerts} alerts × {sc.slides} slides, {sc.injections} injections each",
                      fontsize=10, loc="left")
     ax_eff.grid(True, which="both", alpha=0.25)
-    ax_eff.legend(fontsize=7, loc="lower right", framealpha=0.9)
 
     j = sc.configured
     f = sc.fap_thresholds
-    ax_cal.plot(f, np.maximum(sc.false_per_event[j], floor), color=pal.SKY_CMAP(0.75), linewidth=1.8,
-                label="time slides")
-    ax_cal.fill_between(f, np.maximum(sc.false_per_event[j] - sc.false_per_event_err[j], floor),
-                        np.maximum(sc.false_per_event[j] + sc.false_per_event_err[j], floor),
+    one = 1.0 / max(sc.slid_events, 1)
+    emp = sc.false_per_event[j]
+    err = sc.false_per_event_err[j]
+    seen = emp > 0
+    ax_cal.plot(f, np.where(seen, emp, np.nan), color=pal.SKY_CMAP(0.75), linewidth=1.8, marker=".",
+                label="time slides (± bootstrap)")
+    ax_cal.fill_between(f, np.where(seen, np.maximum(emp - err, 0.5 * one), np.nan), np.where(seen, emp + err, np.nan),
                         color=pal.SKY_CMAP(0.45), alpha=0.35, linewidth=0)
-    ax_cal.plot(f, np.maximum(sc.model_false_per_event[j], floor), color=pal.INK, linestyle="--", linewidth=1.3,
+    ax_cal.plot(f, sc.model_false_per_event[j], color=pal.INK, linestyle="--", linewidth=1.3,
                 label="model (configured rate)")
+    ax_cal.axhline(one, color=pal.FOOTPRINT["color"], linestyle=":", linewidth=1.0,
+                   label=f"one match in all {sc.slid_events} slid events")
     ax_cal.set_xscale("log")
     ax_cal.set_yscale("log")
     ax_cal.set_xlabel("FAP threshold (model false-association probability)")
@@ -257,11 +262,18 @@ def write_plot(result: TuneResult, path) -> Path:
     from matplotlib.figure import Figure
 
     n = len(result.scans)
-    fig = Figure(figsize=(12.0, 4.6 * n), dpi=110, layout="constrained")
+    height = 4.6 * n
+    fig = Figure(figsize=(14.0, height), dpi=110)
     FigureCanvasAgg(fig)
-    axes = fig.subplots(n, 2, squeeze=False, width_ratios=[1.6, 1.0])
-    for (ax_eff, ax_cal), cd, sc in zip(axes, result.plan.classes, result.scans):
+    # A fixed layout (in inches), room on the right of each efficiency panel for its legend.
+    fig.subplots_adjust(left=0.055, right=0.985, bottom=0.75 / height, top=1 - 0.45 / height,
+                        hspace=1.25 / 4.6, wspace=0.3)
+    axes = fig.subplots(n, 3, squeeze=False, width_ratios=[1.5, 0.62, 1.0])
+    for (ax_eff, ax_key, ax_cal), cd, sc in zip(axes, result.plan.classes, result.scans):
         _plot_class(ax_eff, ax_cal, cd, sc)
+        ax_key.axis("off")
+        handles, labels = ax_eff.get_legend_handles_labels()
+        ax_key.legend(handles, labels, fontsize=7, loc="center left", frameon=False, borderaxespad=0.0)
     p = Path(path)
     fig.savefig(p, format="png", metadata={"Software": f"matcher tune {__version__}"})
     return p

@@ -318,7 +318,9 @@ def _alert_class(plan: TunePlan, alert, skymap, bound, cd: ClassData) -> AlertCo
 def run_alert(plan: TunePlan, index: int) -> tuple[dict[str, AlertCounts], float]:
     """Slides and injections of alert ``index`` for every class; returns the counts and the wall time (s)."""
     t0 = time.perf_counter()
-    alert = plan.archive.alerts[index]
+    # Tuning uses the FAP only: without a FAR the engine skips the joint FAR, which it does not need here
+    # (and which overflows, with a warning, for sky overlaps near the smallest floats).
+    alert = dataclasses.replace(plan.archive.alerts[index], far_per_year=None)
     skymap = plan.archive.skymaps[index]
     bound = sky_bound(skymap) if plan.use_bound else None
     out = {cd.name: _alert_class(plan, alert, skymap, bound, cd) for cd in plan.classes}
@@ -420,6 +422,11 @@ def class_warnings(cd: ClassData, scan: ClassScan, settings: TuningSettings) -> 
         out.append(f"class {n}: the model overestimates the background: time slides give "
                    f"{mc.slides_false_per_event:.3g} false matches per event at FAP <= {mc.fap_threshold:.3g}, "
                    f"{mc.ratio:.2g}× the model's {mc.model_false_per_event:.3g} (the model FAP is conservative here)")
+    if mc.overlap == mc.overlap and mc.overlap > 3:
+        out.append(f"class {n}: the slides overlap: each report falls in about {mc.overlap:.0f} consecutive slides "
+                   f"(the stream spans {cd.slides.period_s / 86400:.3g} d for windows up to "
+                   f"{cd.slides.min_offset_s / 86400:.3g} d), so the {scan.slides} slides per alert are worth about "
+                   f"{max(scan.slides / mc.overlap, 1):.0f} independent ones; a longer archive gives firmer false rates")
     if scan.slid_events and settings.target_false_per_event * scan.slid_events < 3:
         out.append(f"class {n}: only {scan.slid_events} slid events: the target of "
                    f"{settings.target_false_per_event:g} false matches per event rests on fewer than 3 expected "
