@@ -36,6 +36,8 @@ import contextlib
 import logging
 import os
 import re
+import socket
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterator, Mapping
@@ -55,6 +57,8 @@ __all__ = [
     "scrub",
     "transport_errors",
     "describe_connection",
+    "wait_reachable",
+    "close_failed_sockets",
     "LOG",
 ]
 
@@ -248,6 +252,33 @@ def _check_file(path: Path | None, what: str, keypath: str) -> str | None:
     return str(path)
 
 
+def close_failed_sockets() -> None:
+    """Make kafka-python close the socket of a connection attempt that fails.
+
+    kafka-python 3.0.12's ``KafkaNetSocket.sock_connect`` raises on a refused or timed-out
+    connect without closing the socket it was given, so every reconnect attempt while a
+    broker is down leaves a socket open until the garbage collector finds it. This wraps
+    that one coroutine to close the socket on the way out of a failure; a version that
+    closes it itself is unaffected (closing twice does nothing).
+    """
+    from kafka.net import inet
+
+    cls = inet.KafkaNetSocket
+    original = cls.sock_connect
+    if getattr(original, "_closes_on_failure", False):
+        return
+
+    async def sock_connect(self, net, sock, sockaddr, timeout_at=None):
+        try:
+            return await original(self, net, sock, sockaddr, timeout_at=timeout_at)
+        except BaseException:
+            sock.close()
+            raise
+
+    sock_connect._closes_on_failure = True
+    cls.sock_connect = sock_connect
+
+
 def client_config(conn: Connection, keypath: str = "connection") -> dict:
     """Keyword arguments for a kafka-python client, with the secrets read now.
 
@@ -258,6 +289,7 @@ def client_config(conn: Connection, keypath: str = "connection") -> dict:
     ConfigError
         A secret is not available, or a certificate file is missing.
     """
+    close_failed_sockets()
     s = conn.security
     kw = _Revealed(
         bootstrap_servers=list(conn.bootstrap_servers),
@@ -279,6 +311,34 @@ def client_config(conn: Connection, keypath: str = "connection") -> dict:
         kw.update(sasl_mechanism=s.sasl_mechanism, sasl_plain_username=s.username,
                   sasl_plain_password=s.password.reveal())
     return kw
+
+
+def wait_reachable(conn: Connection, what: str) -> None:
+    """Wait until a TCP connection to one of the bootstrap servers succeeds, up to ``connect_timeout_ms``.
+
+    kafka-python 3.0.12 leaves sockets and a thread behind when a client fails to
+    bootstrap, so a client is made only once something listens.
+
+    Raises
+    ------
+    KafkaTransportError
+        Nothing accepted a connection in time.
+    """
+    deadline = time.monotonic() + conn.connect_timeout_ms / 1000.0
+    last = "no answer"
+    while True:
+        for server in conn.bootstrap_servers:
+            host, _, port = server.rpartition(":")
+            try:
+                with socket.create_connection((host.strip("[]"), int(port)),
+                                              timeout=max(0.05, min(2.0, deadline - time.monotonic()))):
+                    return
+            except OSError as exc:
+                last = f"{server}: {exc.strerror or type(exc).__name__}"
+        if time.monotonic() >= deadline:
+            raise KafkaTransportError(f"{what}: no broker accepted a connection within {conn.connect_timeout_ms} ms "
+                                      f"({last}; is a broker running at {conn.servers_text}?)")
+        time.sleep(0.2)
 
 
 def _secret_values(conn: Connection) -> list[str]:
@@ -318,7 +378,7 @@ def transport_errors(what: str, conn: Connection) -> Iterator[None]:
     except (kerr.KafkaError, OSError) as exc:
         detail = scrub(f"{type(exc).__name__}: {exc}", conn)
         hint = ""
-        if isinstance(exc, (kerr.NoBrokersAvailable, kerr.KafkaTimeoutError)):
+        if isinstance(exc, (kerr.KafkaConnectionError, kerr.KafkaTimeoutError)):
             hint = f" (is a broker running at {conn.servers_text}?)"
         raise KafkaTransportError(f"{what}: {detail}{hint}") from None
 

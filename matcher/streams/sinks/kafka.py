@@ -35,7 +35,9 @@ from matcher.streams.kafka_common import (
     describe_connection,
     parse_connection,
     parse_topic,
+    KafkaTransportError,
     scrub,
+    wait_reachable,
 )
 from matcher.streams.sinks.base import SinkError, SinkKind, parse_kinds, register_sink_kind
 
@@ -126,6 +128,10 @@ class KafkaSink:
                   compression_type=None if o.compression == "none" else o.compression,
                   max_request_size=o.max_request_size, delivery_timeout_ms=o.delivery_timeout_ms,
                   max_block_ms=o.max_block_ms, allow_auto_create_topics=False)
+        try:
+            wait_reachable(o.connection, self._what("connecting"))
+        except KafkaTransportError as exc:
+            raise SinkError(str(exc)) from None
         try:
             producer = KafkaProducer(**kw)
         except (kerr.KafkaError, OSError) as exc:

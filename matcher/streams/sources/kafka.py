@@ -57,6 +57,7 @@ from matcher.streams.kafka_common import (
     parse_connection,
     parse_topic,
     transport_errors,
+    wait_reachable,
 )
 from matcher.streams.raw import Origin, RawItem
 from matcher.streams.sources.base import Settled, SourceKind, register_source_kind
@@ -229,6 +230,7 @@ class KafkaSource:
         if group_id is not None:
             kw.update(session_timeout_ms=o.session_timeout_ms, heartbeat_interval_ms=o.heartbeat_interval_ms,
                       max_poll_interval_ms=o.max_poll_interval_ms, group_instance_id=o.group_instance_id)
+        wait_reachable(o.connection, self._what("connecting"))
         with transport_errors(self._what("connecting"), o.connection):
             consumer = KafkaConsumer(**kw)
             try:
