@@ -46,7 +46,7 @@ rounded ``1 + Σ``. The same candidates give bit-identical ``P_i`` however they 
 
 The ``p_assoc`` and ``rank`` of a stored record are the published values:
 
-* ``p_assoc`` is ``P_i`` rounded to ``p_assoc_decimals`` decimals (4: steps of 1e-4);
+* ``p_assoc`` is ``P_i`` rounded to ``p_assoc_decimals`` decimals (3: steps of 0.001);
 * ``rank`` is the candidate's rank among all candidates of the event revision (every
   class; ordered by ``P_i``, then odds, then FAP, then transient id) when it is within
   the first ``top_ranks`` (5), else ``null``.
@@ -123,7 +123,7 @@ class MatchSettings:
     candidate_level: float = 0.99
     point_sigma_deg: float = 0.01
     top_ranks: int = 5
-    p_assoc_decimals: int = 4
+    p_assoc_decimals: int = 3
     hosts_published: int = 20
     host_options: Mapping[str, Any] = field(default_factory=dict)
 
