@@ -339,9 +339,10 @@ class _Columns:
 def _host_dict(h) -> dict | None:
     if h is None:
         return None
-    return {"galaxy_id": h.galaxy_id, "prob": h.prob, "prob_gw": h.prob_gw if math.isfinite(h.prob_gw) else None,
-            "p_cc": h.p_cc, "separation_arcsec": h.separation_arcsec, "offset_kpc": h.offset_kpc,
-            "distance_mpc": h.distance_mpc, "distance_err_mpc": h.distance_err_mpc}
+    gid = h.galaxy_id.item() if hasattr(h.galaxy_id, "item") else h.galaxy_id
+    return {"galaxy_id": gid, "prob": _finite(h.prob), "prob_gw": _finite(h.prob_gw), "p_cc": _finite(h.p_cc),
+            "separation_arcsec": _finite(h.separation_arcsec), "offset_kpc": _finite(h.offset_kpc),
+            "distance_mpc": _finite(h.distance_mpc), "distance_err_mpc": _finite(h.distance_err_mpc)}
 
 
 class Matcher:
@@ -626,14 +627,15 @@ class Matcher:
             rec.update(
                 candidate=True,
                 time=r.time_iso,
-                background_expected=float(table.background_expected[j]),
-                distance={"mpc": float(table.distance_mpc[j]), "err_mpc": float(table.distance_err_mpc[j]),
+                background_expected=_finite(table.background_expected[j]),
+                distance={"mpc": _finite(table.distance_mpc[j]), "err_mpc": _finite(table.distance_err_mpc[j]),
                           "source": str(table.distance_source[j])},
             )
             h = hosts[j]
             rec["host"] = None if h is None else _host_dict(h.best)
             if str(table.distance_source[j]) == "external" and h is not None and h.best_by_position is not None:
-                rec["distance"]["host_galaxy_id"] = h.best_by_position.galaxy_id
+                gid = h.best_by_position.galaxy_id
+                rec["distance"]["host_galaxy_id"] = gid.item() if hasattr(gid, "item") else gid
             new[r.transient_id] = (rec, float(table.odds[j]), float(table.fap[j]), r.klass)
 
     def _stored_static(self, store, ev: EventState, tids) -> dict[str, dict]:
@@ -685,6 +687,12 @@ class Matcher:
         for tid in list(ev.static):
             if tid not in ev.published and tid not in tops:
                 del ev.static[tid]
+
+
+def _finite(x) -> float | None:
+    """A plain float, or None for NaN/inf: records stay plain JSON (the store encodes those in C)."""
+    x = float(x)
+    return x if math.isfinite(x) else None
 
 
 def _static_of(record: Mapping[str, Any]) -> dict:
