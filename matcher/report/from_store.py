@@ -12,15 +12,16 @@ What comes from where:
   ``candidate`` (a report that stopped being one keeps a record with
   ``candidate: false`` and is left out). The service publishes ``p_assoc``
   rounded and ``rank`` only for the first few; the report recomputes both
-  from the stored odds, exactly as the service defines them:
+  from the stored odds with the service's own exact sum
+  (:func:`matcher.lifecycle.association_from_sum`, as ``summary.json`` does):
   ``P_i = O_i / (1 + Σ_j O_j)`` over the candidates of the same class, ranked
   over every class by ``P_i``, then odds, then FAP, then transient id. The
   published values are kept in ``p_assoc_published`` and ``rank_published``.
   Positions, errors and the report's own distance come from the stored
   transients (the service's own window query).
-* **hosts**: a :class:`~matcher.catalog.HostRanking` handed in by the caller
-  (the service has it in memory), else the ``hosts`` output the service put in
-  the store's outbox for that revision, else none (the page says why).
+* **hosts**: a :class:`~matcher.catalog.HostRanking` of that revision handed in
+  by the caller (the service has it in memory), else the ``hosts`` output the
+  service put in the store's outbox for that revision, else none (the page says why).
 * **classes**: the configuration's ``classes`` (or the packaged defaults).
 * **figures**: :func:`matcher.report.skyplot.plot_localization` of the
   revision shown (and of every other revision with a map when
@@ -40,22 +41,15 @@ from typing import Any, Mapping
 from matcher import __version__
 from matcher.errors import InputError
 from matcher.report.model import CandidateRow, ClassRow, EventReport, HostRow, ReportFigure, RevisionSummary
-from matcher.report.settings import ReportSettings, parse_report_settings
+from matcher.report.settings import ReportSettings
 from matcher.timeconv import gps_to_iso, unix_to_gps
 
-__all__ = ["event_report_from_store", "report_settings", "exact_association", "HOSTS_OUTBOX_KIND"]
+__all__ = ["event_report_from_store", "exact_association", "HOSTS_OUTBOX_KIND"]
 
 #: Outbox kind under which the service publishes each revision's host ranking.
 HOSTS_OUTBOX_KIND = "hosts"
 
 _NAN = math.nan
-
-
-def report_settings(config) -> ReportSettings:
-    """The ``reports:`` settings of a :class:`matcher.config.Config` (defaults when absent or no config)."""
-    if config is None:
-        return ReportSettings()
-    return parse_report_settings(getattr(config, "reports_raw", None), config.state_dir)
 
 
 def _f(v) -> float:
@@ -78,15 +72,18 @@ def exact_association(rows: list[tuple[str, str, float, float]]) -> dict[str, tu
     -------
     dict
         ``transient_id → (p_assoc, rank)``: ``P_i = O_i / (1 + Σ_j O_j)`` over the
-        candidates of the same class (the sum with :func:`math.fsum`, correctly
-        rounded, so independent of order), rank 1 = best over all classes by
-        ``P_i``, then odds, then FAP, then id.
+        candidates of the same class, with the service's exact, order-independent sum
+        (:func:`matcher.lifecycle.exact_odds_sum`), so the values equal the service's
+        own bit for bit; rank 1 = best over all classes by ``P_i``, then odds, then
+        FAP, then id (the service's order).
     """
+    from matcher.lifecycle import association_from_sum, exact_odds_sum
+
     by_class: dict[str, list[float]] = defaultdict(list)
     for _tid, klass, odds, _fap in rows:
         by_class[klass].append(odds)
-    den = {k: 1.0 + math.fsum(v) for k, v in by_class.items()}
-    keyed = sorted((-(odds / den[klass]), -odds, fap, tid) for tid, klass, odds, fap in rows)
+    sums = {k: exact_odds_sum(v) for k, v in by_class.items()}
+    keyed = sorted((-association_from_sum(odds, sums[klass]), -odds, fap, tid) for tid, klass, odds, fap in rows)
     return {tid: (-negp, rank) for rank, (negp, _, _, tid) in enumerate(keyed, start=1)}
 
 
@@ -257,12 +254,12 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
     store : matcher.store.Store
     event_id : str
     config : matcher.config.Config, optional
-        Classes (default: the packaged ones), localization size limit, ``reports:`` settings.
+        Classes (default: the packaged ones) and the localization size limit.
     settings : ReportSettings, optional
-        Overrides the configuration's ``reports:`` section.
+        Row limits, plots and resolution (default: :class:`ReportSettings` defaults).
     ranking : matcher.catalog.HostRanking, optional
-        The host ranking of the revision shown (the service has it in memory);
-        without it the stored ``hosts`` output is used.
+        A host ranking the caller has in memory (the service does); used when its
+        ``meta`` names the revision shown, else the stored ``hosts`` output is used.
     now : float, optional, Unix s
         Time of writing (default: the clock).
 
@@ -273,7 +270,7 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
     """
     from matcher.coincidence import default_classes
 
-    settings = settings or report_settings(config)
+    settings = settings or ReportSettings()
     revs = store.revisions(event_id)
     if not revs:
         raise InputError(f"event {event_id!r} is not in the store {store.path}")
@@ -307,8 +304,8 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
     hosts: list[HostRow] = []
     p_out = _NAN
     if top <= 0:
-        host_note = "Host galaxies are turned off (reports.top_hosts: 0)."
-    elif ranking is not None:
+        host_note = "Host galaxies are turned off (top_hosts: 0)."
+    elif ranking is not None and ranking.meta.get("revision") == shown.alert.revision:
         hosts, p_out = _host_rows_from_ranking(ranking, top)
         host_note = f"Host ranking of revision {shown.alert.revision}, as computed by the service."
     else:

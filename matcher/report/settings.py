@@ -1,17 +1,19 @@
-"""The ``reports:`` section of the configuration: when and where per-event reports are written.
+"""Options of the ``html`` report writer (``reports.NAME`` in the configuration).
 
-::
+The service runs every writer named under ``reports:`` after each batch that gave an
+event a new revision (or withdrew it); see :mod:`matcher.service`. The ``html`` kind
+writes the per-event report folder::
 
     reports:
-      enabled: true            # default true when the section is present; no section: no reports
-      out_dir: reports         # relative to state_dir; one folder per event inside it
-      when: revision           # revision: every new revision (and withdrawal); results: also when results change
-      max_candidates: 100      # candidate rows in the page and in candidates.ecsv (best first)
-      top_hosts: 20            # host galaxies in the page, hosts.ecsv and hosts.vot
-      plots: current           # current: the sky plot of the revision shown; all: one per revision with a map
-      dpi: 100                 # sky plot resolution (100: 1100 × 850 px)
+      html:
+        kind: html
+        out: reports            # folder of the per-event folders; relative to the config file
+        max_candidates: 100     # candidate rows in the page and in candidates.ecsv (best first)
+        top_hosts: 20           # host galaxies in the page, hosts.ecsv and hosts.vot (0: none)
+        plots: current          # current: the sky plot of the revision shown; all: one per revision with a map
+        dpi: 100                # sky plot resolution (100: 1100 × 850 px)
 
-Imports nothing heavy, so that loading a configuration does not pull in matplotlib.
+Imports nothing heavy, so that reading a configuration does not pull in matplotlib.
 """
 
 from __future__ import annotations
@@ -21,30 +23,26 @@ from pathlib import Path
 from typing import Any
 
 from matcher.errors import ConfigError
-from matcher.keycheck import check_keys, get_bool, get_int, get_number, get_path, get_str
+from matcher.keycheck import check_keys, get_int, get_number, get_path, get_str
 
-__all__ = ["ReportSettings", "parse_report_settings", "REPORT_WHEN", "REPORT_PLOTS"]
+__all__ = ["ReportSettings", "parse_report_settings", "REPORT_PLOTS", "DEFAULT_OUT"]
 
-#: When the service writes an event's report.
-REPORT_WHEN = ("revision", "results")
 #: Which revisions get a sky plot.
 REPORT_PLOTS = ("current", "all")
+#: Default folder of the per-event report folders (relative to the configuration file).
+DEFAULT_OUT = "reports"
 
-_KEYS = ("enabled", "out_dir", "when", "max_candidates", "top_hosts", "plots", "dpi")
+_KEYS = ("out", "max_candidates", "top_hosts", "plots", "dpi")
 
 
 @dataclass(frozen=True)
 class ReportSettings:
-    """``reports``: see the module docstring.
+    """One ``html`` writer's options (see the module docstring).
 
     Attributes
     ----------
-    enabled : bool
-        Whether the service writes reports.
-    out_dir : Path or None
-        Folder of the per-event folders (None: ``STATE_DIR/reports``).
-    when : str
-        ``revision`` or ``results``.
+    out : Path or None
+        Folder of the per-event folders (None: not set; the command line gives ``--out`` itself).
     max_candidates : int
     top_hosts : int
     plots : str
@@ -52,48 +50,39 @@ class ReportSettings:
     dpi : float
     """
 
-    enabled: bool = False
-    out_dir: Path | None = None
-    when: str = "revision"
+    out: Path | None = None
     max_candidates: int = 100
     top_hosts: int = 20
     plots: str = "current"
     dpi: float = 100.0
 
-    def resolved_out_dir(self, state_dir) -> Path:
-        """:attr:`out_dir`, or ``STATE_DIR/reports`` when it is not set."""
-        return self.out_dir if self.out_dir is not None else Path(state_dir) / "reports"
 
-
-def parse_report_settings(raw: Any, state_dir, keypath: str = "reports") -> ReportSettings:
-    """Validate the ``reports`` mapping (``None``: the section is absent, reports off).
+def parse_report_settings(raw: Any, base_dir, keypath: str = "reports.html") -> ReportSettings:
+    """Validate one writer's options (without its ``kind``).
 
     Parameters
     ----------
     raw : mapping or None
-    state_dir : Path
-        Relative ``out_dir`` resolves against it.
+    base_dir : Path
+        A relative ``out`` resolves against it (the configuration file's folder).
     keypath : str
+        For error messages, e.g. ``reports.html``.
 
     Raises
     ------
     ConfigError
-        Naming the key path, e.g. ``config reports.when: must be one of revision, results, got 'always'``.
+        Naming the key path, e.g. ``config reports.html.plots: must be one of current, all, got 'every'``.
     """
-    if raw is None:
-        return ReportSettings()
     raw = check_keys(raw, _KEYS, keypath)
     max_candidates = get_int(raw, "max_candidates", keypath, 100, lo=1)
     top_hosts = get_int(raw, "top_hosts", keypath, 20, lo=0)
     if max_candidates > 100_000:
-        raise ConfigError(f"{keypath}.max_candidates", f"must be <= 100000 (a page a browser can open), got "
-                                                       f"{max_candidates}")
+        raise ConfigError(f"{keypath}.max_candidates",
+                          f"must be <= 100000 (a page a browser can open), got {max_candidates}")
     if top_hosts > 10_000:
         raise ConfigError(f"{keypath}.top_hosts", f"must be <= 10000, got {top_hosts}")
     return ReportSettings(
-        enabled=get_bool(raw, "enabled", keypath, True),
-        out_dir=get_path(raw, "out_dir", keypath, Path(state_dir)),
-        when=get_str(raw, "when", keypath, "revision", choices=REPORT_WHEN),
+        out=get_path(raw, "out", keypath, Path(base_dir), DEFAULT_OUT),
         max_candidates=max_candidates,
         top_hosts=top_hosts,
         plots=get_str(raw, "plots", keypath, "current", choices=REPORT_PLOTS),

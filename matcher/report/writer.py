@@ -15,22 +15,19 @@ a half-written file and a page never links to tables older than itself.
 
 The service
 -----------
-:class:`ReportHook` is what the service loop holds when ``reports:`` is
-configured. After a batch's transaction has committed (the report reads the
-store, so it must see the batch) and after publishing, the loop calls::
+The service runs the writers named under ``reports:`` (:mod:`matcher.service`,
+:func:`~matcher.service.register_report_writer`); the ``html`` kind is
+:class:`HtmlReportWriter`, built by :func:`build_html_writer`::
 
-    hook = ReportHook.from_config(config)        # None when reports are off
-    ...
-    if hook is not None:
-        for outcome in hook.after_batch(store, revision_events=[eid for eid, _rev, _state in stats.events_changed],
-                                        result_events=events_whose_results_were_written,
-                                        rankings={eid: ev.ranking for eid, ev in matcher.events.items()}):
-            if outcome.error:
-                log(outcome.error)               # a report that fails never stops the service
+    reports:
+      html: {kind: html, out: reports}     # one folder per event: reports/EVENT/index.html ...
 
-A report failure (an unwritable folder, a map that no longer reads) comes back
-as an outcome with ``error`` set; nothing in the store depends on reports, so
-the batch stays committed and the next revision writes the report again.
+After a batch has committed and been published, the service calls
+``on_revision(store, event_id, revision, state)`` for every event that got a new
+revision or was withdrawn; the writer reads the store (so it sees the batch) and
+rewrites that event's folder. A failure raises :class:`~matcher.errors.InputError`;
+the service warns and goes on, since nothing in the store depends on reports, and
+the next revision writes the report again.
 """
 
 from __future__ import annotations
@@ -38,9 +35,9 @@ from __future__ import annotations
 import os
 import time
 import urllib.parse
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable, Mapping
+from typing import Mapping
 
 from matcher.errors import InputError, MatcherError
 from matcher.report.settings import ReportSettings
@@ -48,8 +45,8 @@ from matcher.report.settings import ReportSettings
 __all__ = [
     "REPORT_FILES",
     "WrittenReport",
-    "ReportOutcome",
-    "ReportHook",
+    "HtmlReportWriter",
+    "build_html_writer",
     "event_folder_name",
     "render_report_files",
     "write_report_files",
@@ -210,83 +207,70 @@ def write_event_report(store, event_id: str, out_dir, config=None, *, settings: 
                          len(report.candidates), len(report.hosts), len(report.figures), time.perf_counter() - t0)
 
 
-@dataclass(frozen=True)
-class ReportOutcome:
-    """One event's report after a batch: written, or the error that stopped it."""
+class HtmlReportWriter:
+    """The ``html`` report writer of the service (``reports.NAME: {kind: html, ...}``).
 
-    event_id: str
-    written: WrittenReport | None = None
-    error: str | None = None
-
-
-@dataclass
-class ReportHook:
-    """Writes the reports of the events a batch changed (see the module docstring).
+    Implements :class:`matcher.service.ReportWriter`: after a batch that gave an event a
+    new revision (or withdrew it), :meth:`on_revision` rewrites the event's folder
+    ``OUT/EVENT`` (:func:`event_folder_name`). :meth:`attach` gives it the service, whose
+    configuration supplies the classes and limits and whose in-memory event state
+    supplies the host ranking (without it the stored ``hosts`` output is read).
 
     Attributes
     ----------
+    name : str
     settings : ReportSettings
-    out_dir : Path
-        Parent of the per-event folders (:func:`event_folder_name`).
-    config : matcher.config.Config or None
+    written, failed : int
+        Reports written, and failures raised to the service (which warns and goes on).
+    last : WrittenReport or None
     """
 
-    settings: ReportSettings
-    out_dir: Path
-    config: object = None
-    written: int = field(default=0, init=False)
-    failed: int = field(default=0, init=False)
+    def __init__(self, name: str, settings: ReportSettings):
+        if settings.out is None:
+            raise InputError(f"report writer {name}: no output folder")
+        self.name = name
+        self.settings = settings
+        self.config = None
+        self._service = None
+        self.written = 0
+        self.failed = 0
+        self.last: WrittenReport | None = None
 
-    @classmethod
-    def from_config(cls, config) -> "ReportHook | None":
-        """The hook for ``config``'s ``reports:`` section; None when reports are off."""
-        from matcher.report.from_store import report_settings
-
-        settings = report_settings(config)
-        if not settings.enabled:
-            return None
-        return cls(settings, settings.resolved_out_dir(config.state_dir), config)
+    def attach(self, service) -> None:
+        """Called by the service once it has built its matcher."""
+        self._service = service
+        self.config = getattr(service, "config", None)
 
     def folder(self, event_id: str) -> Path:
-        return self.out_dir / event_folder_name(event_id)
+        return Path(self.settings.out) / event_folder_name(event_id)
 
-    def events_to_write(self, revision_events: Iterable[str], result_events: Iterable[str] = ()) -> list[str]:
-        """Events whose report is due: every event with a new revision (or withdrawal), plus, with
-        ``when: results``, every event whose results changed. Sorted, each once."""
-        due = set(revision_events)
-        if self.settings.when == "results":
-            due |= set(result_events)
-        return sorted(due)
+    def _ranking(self, event_id: str):
+        matcher = getattr(self._service, "matcher", None)
+        ev = None if matcher is None else matcher.events.get(event_id)
+        return None if ev is None else ev.ranking
 
-    def after_batch(self, store, revision_events: Iterable[str], result_events: Iterable[str] = (),
-                    rankings: Mapping[str, object] | None = None) -> list[ReportOutcome]:
-        """Write the due reports; call after the batch's transaction has committed.
+    def on_revision(self, store, event_id: str, revision: int, state: str) -> None:
+        """Rewrite the event's report (raises ``InputError`` when it cannot; the service warns)."""
+        try:
+            self.last = write_event_report(store, event_id, self.folder(event_id), self.config,
+                                           settings=self.settings, ranking=self._ranking(event_id))
+        except (MatcherError, OSError):
+            self.failed += 1
+            raise
+        self.written += 1
 
-        Parameters
-        ----------
-        store : matcher.store.Store
-        revision_events : iterable of str
-            Events that got a new current revision (or were withdrawn) in the batch.
-        result_events : iterable of str
-            Events whose results were written in the batch (used with ``when: results``).
-        rankings : mapping of str to HostRanking, optional
-            Host rankings the service holds, by event id.
+    def close(self) -> None:
+        self._service = None
 
-        Returns
-        -------
-        list of ReportOutcome
-            One per event written or failed, in event-id order. Failures are not raised.
-        """
-        out = []
-        for eid in self.events_to_write(revision_events, result_events):
-            ranking = (rankings or {}).get(eid)
-            try:
-                w = write_event_report(store, eid, self.folder(eid), self.config, settings=self.settings,
-                                       ranking=ranking)
-            except (MatcherError, OSError) as exc:
-                self.failed += 1
-                out.append(ReportOutcome(eid, None, f"report of event {eid}: {exc}"))
-                continue
-            self.written += 1
-            out.append(ReportOutcome(eid, w, None))
-        return out
+
+def build_html_writer(name: str, options: Mapping, base_dir: Path) -> HtmlReportWriter:
+    """``build`` of the ``html`` writer kind for :func:`matcher.service.register_report_writer`.
+
+    Raises
+    ------
+    ConfigError
+        A bad option, naming its key path (``reports.NAME.OPTION``).
+    """
+    from matcher.report.settings import parse_report_settings
+
+    return HtmlReportWriter(name, parse_report_settings(options, base_dir, f"reports.{name}"))
