@@ -84,13 +84,23 @@ def register_report_writer(kind: str, build: Callable[[str, Mapping[str, Any], P
     _REPORT_KINDS[kind] = build
 
 
+def _builtin_report_writers() -> None:
+    """Register the writer kinds that come with matcher: ``html`` (:mod:`matcher.report.writer`)."""
+    if "html" not in _REPORT_KINDS:
+        from matcher.report.writer import build_html_writer
+
+        register_report_writer("html", build_html_writer)
+
+
 def report_writer_kinds() -> tuple[str, ...]:
+    _builtin_report_writers()
     return tuple(sorted(_REPORT_KINDS))
 
 
 def _report_writers(raw: Mapping[str, Any] | None, base_dir: Path) -> list[ReportWriter]:
     if not raw:
         return []
+    _builtin_report_writers()
     if not isinstance(raw, Mapping):
         raise ConfigError("reports", f"must be a mapping of report names, got {type(raw).__name__}")
     out = []
@@ -230,6 +240,10 @@ class Service:
             self.matcher = Matcher(config.classes(), index=index, settings=settings,
                                    localization_max_bytes=config.limits.localization_max_bytes)
             self.matcher.rebuild(self.store)
+            for w in self.writers:  # writers that read the configuration or the matcher's event state
+                attach = getattr(w, "attach", None)
+                if attach is not None:
+                    attach(self)
             chosen = list(sources) if sources is not None else [config.source(n) for n in config.sources]
             self._codecs = {}
             for src in chosen:
