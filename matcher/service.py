@@ -30,7 +30,6 @@ from the store.
 
 from __future__ import annotations
 
-import math
 import threading
 import time
 import warnings
@@ -184,11 +183,8 @@ class ServiceStats:
     def rate(self, window_s: float = 10.0) -> float:
         """Messages per second over the last ``window_s`` seconds."""
         now = time.monotonic()
-        pts = [(t, n) for t, n in self.recent if now - t <= window_s]
-        if not pts:
-            return 0.0
-        span = max(now - min(t for t, _ in pts), 1e-3)
-        return sum(n for _, n in pts) / span
+        total = sum(n for t, n in self.recent if now - t <= window_s)
+        return total / max(min(window_s, now - self.started), 1e-3)
 
 
 class Service:
@@ -394,6 +390,3 @@ def _native(max_bytes: int):
 
     return make_codec("native", max_bytes=max_bytes)
 
-
-def _isfinite(x) -> bool:
-    return isinstance(x, (int, float)) and math.isfinite(x)
