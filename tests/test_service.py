@@ -132,3 +132,33 @@ def test_republishing_follows_the_rule(golden):
     quiet = [ls for ls in by_key.values() if all(l["rank"] is None and l["p_assoc"] == 0 for l in ls)
              and len({l["status"] for l in ls}) == 1]
     assert quiet and all(len(ls) == 1 for ls in quiet)
+
+
+def test_report_writers_run_after_each_changed_revision(stream, tmp_path):
+    from matcher.config import config_from_mapping
+    from matcher.errors import ConfigError
+    from matcher.service import register_report_writer
+
+    calls = []
+
+    class Writer:
+        def __init__(self, name, options, base_dir):
+            self.name, self.options = name, options
+
+        def on_revision(self, store, event_id, revision, state):
+            # Runs after the batch is durable (a later revision of the same batch may be current already).
+            assert revision in [r.alert.revision for r in store.revisions(event_id)]
+            calls.append((event_id, revision, state))
+
+        def close(self):
+            calls.append("closed")
+
+    register_report_writer("test-recorder", Writer)
+    cfg = config_from_mapping({"state_dir": "st", "reports": {"rec": {"kind": "test-recorder", "out": "x"}}},
+                              base_dir=tmp_path)
+    replay_archive(stream, out_dir=tmp_path / "o", config=cfg, progress_mode="off")
+    assert calls == [("EV-A", 1, "issued"), ("EV-B", 1, "issued"), ("EV-A", 2, "revised"),
+                     ("EV-B", 2, "withdrawn"), "closed"]
+    bad = config_from_mapping({"state_dir": "st2", "reports": {"h": {"kind": "no-such-writer"}}}, base_dir=tmp_path)
+    with pytest.raises(ConfigError, match="reports.h.kind: unknown report writer 'no-such-writer'"):
+        replay_archive(stream, out_dir=tmp_path / "o2", config=bad, progress_mode="off")
