@@ -147,7 +147,7 @@ def test_missing_certificate_file_is_named(tmp_path):
     (plain(topics={"reports": ["tr"]}, group_id="g", heartbeat_interval_ms=50000),
      "sources.k.heartbeat_interval_ms", "below session_timeout_ms"),
     (plain(fetch_max_wait_ms=40000), "sources.k.fetch_max_wait_ms", "below connection.request_timeout_ms"),
-    (plain(received_at="later"), "sources.k.received_at", "record, arrival"),
+    (plain(received_at="later"), "sources.k.received_at", "record, arrival, message"),
     (plain(group_instance_id="a"), "sources.k.group_instance_id", "needs group_id"),
 ])
 def test_source_errors_name_the_key_path(source, path, words):

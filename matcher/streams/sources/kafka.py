@@ -29,8 +29,10 @@ origin and bytes, so a re-delivery stores nothing twice.
 
 Every item's :class:`~matcher.streams.raw.Origin` is ``(source, "kafka", topic,
 partition, offset)``: a quarantined message names exactly where it was.
-``received_at`` is the record's timestamp (``received_at: record``, the default) or
-the time it was read (``received_at: arrival``). A record larger than
+``received_at`` is the record's timestamp (``received_at: record``, the default), the
+time it was read (``received_at: arrival``), or the message's own top-level
+``received_at`` field when it has one (``received_at: message``, as in an archive;
+else the record's timestamp). A record larger than
 ``limits.message_max_bytes`` is handed on truncated, with its true size, for the
 codec to reject and the store to quarantine.
 
@@ -41,6 +43,7 @@ Lag, for the dashboard: :meth:`KafkaSource.lag` (no network calls); for
 from __future__ import annotations
 
 import collections
+import json
 import threading
 import time
 from dataclasses import dataclass
@@ -72,6 +75,26 @@ ROLES = ("alerts", "reports")
 _PARTITION_CHECK_S = 30.0
 _COMMIT_RETRY_S = 1.0
 _END_CHECK_S = 1.0
+
+
+_MARKER = b'"received_at"'
+
+
+def _message_received_at(data: bytes) -> float | None:
+    """Unix s from a message's own top-level ``received_at`` (ISO-8601 UTC), or None.
+
+    An unreadable one is no error here: the codec rejects the message for it.
+    """
+    if _MARKER not in data:
+        return None
+    from matcher.timeconv import gps_to_unix, iso_to_gps
+
+    try:
+        obj = json.loads(data)
+        value = obj.get("received_at") if isinstance(obj, dict) else None
+        return gps_to_unix(iso_to_gps(value)) if isinstance(value, str) else None
+    except (ValueError, RecursionError):
+        return None
 
 
 def stream_name(topic: str, partition: int) -> str:
@@ -107,7 +130,8 @@ class KafkaSourceOptions:
         Finish once everything that was on the topics at start is processed (alerts by
         this instance; reports committed by the group): for replays, tests and benchmarks.
     received_at : str
-        ``record`` (the record's timestamp) or ``arrival`` (when it was read).
+        ``record`` (the record's timestamp), ``arrival`` (when it was read) or ``message``
+        (the message's own ``received_at``, else the record's timestamp).
     """
 
     connection: Connection
@@ -427,7 +451,7 @@ class KafkaSource:
             owned = consumer.assignment() if records else set()
         now = time.time()
         items: list[RawItem] = []
-        by_arrival = self.options.received_at == "arrival"
+        mode = self.options.received_at
         for tp, recs in records.items():
             if role == "reports" and tp not in owned:
                 # Revoked or lost during this poll: not handed out, not committed; the
@@ -444,7 +468,11 @@ class KafkaSource:
                 truncated = size > self.max_bytes
                 if truncated:
                     data = data[: self.max_bytes + 1]
-                t = now if (by_arrival or r.timestamp is None or r.timestamp <= 0) else r.timestamp / 1000.0
+                t = None
+                if mode == "message" and not truncated:
+                    t = _message_received_at(data)
+                if t is None:
+                    t = now if (mode == "arrival" or r.timestamp is None or r.timestamp <= 0) else r.timestamp / 1000.0
                 items.append(RawItem(data, Origin(self.name, "kafka", r.topic, r.partition, r.offset),
                                      (stream, str(r.offset + 1)) if role == "alerts" else None,
                                      t, None, truncated=truncated, size=size))
@@ -755,7 +783,8 @@ def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> KafkaSour
         raise ConfigError(sub(keypath, "group_instance_id"), "needs group_id")
     return KafkaSourceOptions(conn, alerts, reports, group_id, instance, **opts,
                               stop_at_end=get_bool(raw, "stop_at_end", keypath, False),
-                              received_at=get_str(raw, "received_at", keypath, "record", choices=("record", "arrival")))
+                              received_at=get_str(raw, "received_at", keypath, "record",
+                                                  choices=("record", "arrival", "message")))
 
 
 def _build(name: str, options: KafkaSourceOptions, *, max_bytes: int) -> KafkaSource:
