@@ -6,7 +6,6 @@ from __future__ import annotations
 import base64
 import math
 import re
-from html.parser import HTMLParser
 
 import pytest
 
@@ -21,7 +20,7 @@ from matcher.report.model import (
     ReportFigure,
     RevisionSummary,
 )
-from report_helpers import small_png
+from report_helpers import body_rows, cells, parse_html, small_png
 
 NASTY = '<script>alert("x")</script>&\'"'
 
@@ -54,67 +53,9 @@ def _report(**over) -> EventReport:
     return EventReport(**kw)
 
 
-class _Collect(HTMLParser):
-    """Collects tags, attributes and the cells of each table (stdlib parser)."""
-
-    def __init__(self):
-        super().__init__(convert_charrefs=True)
-        self.tags = []
-        self.stack = []
-        self.tables: dict[str, list[list[dict]]] = {}
-        self._table = None
-        self._cell = None
-        self.text = []
-
-    def handle_starttag(self, tag, attrs):
-        a = dict(attrs)
-        self.tags.append((tag, a))
-        if tag not in ("meta", "img", "br"):
-            self.stack.append(tag)
-        if tag == "table" and a.get("id"):
-            self._table = a["id"]
-            self.tables[self._table] = []
-        elif tag == "tr" and self._table:
-            self.tables[self._table].append([])
-        elif tag == "td" and self._table:
-            self._cell = {"attrs": a, "text": ""}
-            self.tables[self._table][-1].append(self._cell)
-
-    def handle_endtag(self, tag):
-        if tag in ("meta", "img", "br"):
-            return
-        assert self.stack and self.stack[-1] == tag, f"</{tag}> closes <{self.stack[-1] if self.stack else None}>"
-        self.stack.pop()
-        if tag == "td":
-            self._cell = None
-        if tag == "table":
-            self._table = None
-
-    def handle_data(self, data):
-        self.text.append(data)
-        if self._cell is not None:
-            self._cell["text"] += data
-
-
-def _parse(page: str) -> _Collect:
-    p = _Collect()
-    p.feed(page)
-    p.close()
-    assert p.stack == [], f"unclosed tags: {p.stack}"
-    return p
-
-
-def _body_rows(p, table):
-    return [r for r in p.tables[table] if r]  # header rows have th, not td
-
-
-def _cells(row):
-    return {c["attrs"]["data-col"]: c for c in row if "data-col" in c["attrs"]}
-
-
 def test_page_is_self_contained_and_balanced():
     page = render_event_html(_report(), links=[("candidates.ecsv", "candidates.ecsv")])
-    p = _parse(page)
+    p = parse_html(page)
     assert page.startswith("<!DOCTYPE html>")
     tags = {t for t, _ in p.tags}
     assert "script" not in tags and "link" not in tags and "iframe" not in tags and "object" not in tags
@@ -131,31 +72,31 @@ def test_text_is_escaped_everywhere():
     page = render_event_html(_report())
     assert "<script" not in page  # the id, galaxy, caption, notes, host note all carried a script tag
     assert page.count(NASTY) == 0
-    p = _parse(page)
+    p = parse_html(page)
     text = "".join(p.text)
     assert text.count('<script>alert("x")</script>') >= 6  # shown as text, after the parser unescapes it
-    ids = [_cells(r)["transient_id"]["attrs"]["data-value"] for r in _body_rows(p, "candidates")]
+    ids = [cells(r)["transient_id"]["attrs"]["data-value"] for r in body_rows(p, "candidates")]
     assert ids[2] == NASTY  # attribute values round-trip through escaping
 
 
 def test_candidate_cells_carry_exact_values_and_faithful_text():
     r = _report()
-    p = _parse(render_event_html(r))
-    rows = _body_rows(p, "candidates")
+    p = parse_html(render_event_html(r))
+    rows = body_rows(p, "candidates")
     assert len(rows) == len(r.candidates)
     for row, c in zip(rows, r.candidates):
-        cells = _cells(row)
-        assert int(cells["rank"]["attrs"]["data-value"]) == c.rank
+        cs = cells(row)
+        assert int(cs["rank"]["attrs"]["data-value"]) == c.rank
         for col, attr in (("p_assoc", "p_assoc"), ("fap", "fap"), ("odds", "odds"), ("prior", "prior"),
                           ("sky_per_sr", "sky_per_sr"), ("time_per_s", "time_per_s"), ("dt_s", "dt_s"),
                           ("distance_factor", "distance_factor"), ("rate_per_sr_per_s", "rate_per_sr_per_s")):
-            v = float(cells[col]["attrs"]["data-value"])
+            v = float(cs[col]["attrs"]["data-value"])
             want = getattr(c, attr)
             assert (math.isnan(v) and math.isnan(want)) or v == want, (col, v, want)  # repr round-trips exactly
         for col in ("p_assoc", "fap", "odds"):
             value = getattr(c, col)
             want = float(round(value)) if 100 <= value < 1e5 else float(f"{value:.2e}")
-            assert _number(cells[col]["text"]) == pytest.approx(want, rel=1e-12), col
+            assert _number(cs[col]["text"]) == pytest.approx(want, rel=1e-12), col
 
 
 def _number(text: str) -> float:
@@ -187,23 +128,23 @@ def test_format_edge_cases():
 def test_page_shows_summary_tables_and_caution():
     r = _report()
     page = render_event_html(r, links=[("hosts.vot", "hosts.vot")])
-    p = _parse(page)
+    p = parse_html(page)
     text = " ".join("".join(p.text).split())
     assert " ".join(CAUTION.split()) in text
     assert "matcher 9.9.9" in text and "2031-04-02T11:00:00.000Z" in text
     assert "Best candidate: OT-INV-17 (optical)" in text and "+4.20 h after merger" in text
     assert "25 deg²" in text and "96 deg²" in text  # 50% and 90% areas of the shown revision
     assert "180 ± 40 Mpc" in text
-    assert "1.50 × 10⁻⁹ per year (1 in 6.67 × 10⁸ years)" in text
+    assert "1.50 × 10⁻⁹ per year" in text and "1 in 6.67 × 10⁸ years" in text  # FAR and 1/FAR
     assert "configuration /etc/x.yaml" in text
     # Revision history, oldest first, with states and receive times.
-    revs = _body_rows(p, "revisions")
-    assert [_cells(x)["revision"]["attrs"]["data-value"] for x in revs] == ["1", "2"]
-    assert _cells(revs[0])["received_at_iso"]["text"] == "2031-04-02T10:01:30.000Z"
+    revs = body_rows(p, "revisions")
+    assert [cells(x)["revision"]["attrs"]["data-value"] for x in revs] == ["1", "2"]
+    assert cells(revs[0])["received_at_iso"]["text"] == "2031-04-02T10:01:30.000Z"
     # Hosts with cumulative probability, and the classes with their windows and rates.
-    hosts = _body_rows(p, "hosts")
-    assert [float(_cells(h)["cum_prob"]["attrs"]["data-value"]) for h in hosts] == [0.4, 0.65]
-    classes = {_cells(c)["name"]["attrs"]["data-value"]: _cells(c) for c in _body_rows(p, "classes")}
+    hosts = body_rows(p, "hosts")
+    assert [float(cells(h)["cum_prob"]["attrs"]["data-value"]) for h in hosts] == [0.4, 0.65]
+    classes = {cells(c)["name"]["attrs"]["data-value"]: cells(c) for c in body_rows(p, "classes")}
     assert float(classes["optical"]["window_hi_s"]["attrs"]["data-value"]) == 259200.0
     assert classes["optical"]["window_hi_s"]["text"] == "+3.00 d"
     # r = 0.1 per deg² per day = 0.1 × (180/π)² / 86400 per sr per s (unit conversion, by hand).
@@ -215,7 +156,7 @@ def test_page_shows_summary_tables_and_caution():
 
 def test_image_is_the_figure_png():
     r = _report()
-    p = _parse(render_event_html(r))
+    p = parse_html(render_event_html(r))
     imgs = [a for t, a in p.tags if t == "img"]
     assert len(imgs) == 1
     data = base64.b64decode(imgs[0]["src"].split(",", 1)[1], validate=True)
@@ -230,7 +171,7 @@ def test_withdrawn_and_empty_pages():
     w = render_event_html(_report(revisions=revs, revision=1))
     assert "was <strong>withdrawn</strong> in revision 2" in w
     assert "Candidates, hosts and the sky plot are those of revision 1" in w
-    e = _parse(render_event_html(_report(candidates=(), hosts=(), figures=())))
+    e = parse_html(render_event_html(_report(candidates=(), hosts=(), figures=())))
     text = "".join(e.text)
     assert "No transient report has been matched to revision 2 yet" in text
     assert "no candidates matched" in text and "No host ranking." in text and "No sky plot" in text
@@ -254,3 +195,12 @@ def test_model_rejects_bad_values_with_clear_errors():
         _report(candidates=base.candidates[::-1])
     with pytest.raises(InputError, match="revision 7 is not among the revisions"):
         _report(revision=7)
+
+
+def test_table_columns_cover_every_model_field():
+    from matcher.report.model import CANDIDATE_FIELDS, HOST_FIELDS
+    from matcher.report.tables import CANDIDATE_COLUMNS, HOST_COLUMNS
+
+    assert tuple(CANDIDATE_COLUMNS) == CANDIDATE_FIELDS and tuple(HOST_COLUMNS) == HOST_FIELDS
+    assert set(CANDIDATE_FIELDS) == set(CandidateRow.__dataclass_fields__)
+    assert set(HOST_FIELDS) == set(HostRow.__dataclass_fields__)

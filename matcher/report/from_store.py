@@ -50,6 +50,9 @@ __all__ = ["event_report_from_store", "exact_association", "HOSTS_OUTBOX_KIND"]
 HOSTS_OUTBOX_KIND = "hosts"
 
 _NAN = math.nan
+#: Candidates labelled on the report's sky plot: the table beside it lists every rank, and more
+#: labels crowd a small region (the demo's 35 deg² map with 100 candidates).
+_PLOT_LABELS = 5
 
 
 def _f(v) -> float:
@@ -233,7 +236,7 @@ def _plot(skymap, cands, hosts, event_id, alert, dpi: float, title: str) -> Repo
                 distance_err_mpc=h.distance_err_mpc if h.distance_err_mpc > 0 else None) for h in hosts]
     plot = plot_localization(skymap, candidates=marks, hosts=gal, event=EventInfo(event_id, alert.revision,
                                                                                    alert.merger_time_iso),
-                             max_hosts=max(len(gal), 1), dpi=dpi)
+                             max_hosts=max(len(gal), 1), max_labels=_PLOT_LABELS, dpi=dpi)
     png = figure_bytes(plot.figure, "png")
     areas = ", ".join(f"{lv:.0%} area {a:,.1f} deg²" for lv, a in plot.area_deg2.items())
     alt = (f"Sky map of {event_id} revision {alert.revision}: {areas}; {len(marks)} candidate"
@@ -273,7 +276,9 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
     settings = settings or ReportSettings()
     revs = store.revisions(event_id)
     if not revs:
-        raise InputError(f"event {event_id!r} is not in the store {store.path}")
+        active = [sr.alert.event_id for sr in store.active_events()]
+        hint = f" (active events: {', '.join(active[:10])}{' …' if len(active) > 10 else ''})" if active else ""
+        raise InputError(f"event {event_id!r} is not in the store {store.path}{hint}")
     if config is not None:
         classes = dict(config.classes())
         source = (f"configuration {config.path}" if config.path is not None and config.classes_raw is not None

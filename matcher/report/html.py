@@ -120,6 +120,8 @@ def format_duration(seconds: float) -> str:
 def _area(v: float) -> str:
     if _nan(v):
         return _DASH
+    if 0 < v < 0.1:
+        return f"{format_number(v, 2)} deg²"
     return f"{v:,.1f} deg²" if v < 10 else f"{v:,.0f} deg²"
 
 
@@ -129,12 +131,19 @@ def _mpc(d: float, e: float) -> str:
     return f"{d:,.0f} ± {e:,.0f} Mpc" if not _nan(e) else f"{d:,.0f} Mpc"
 
 
-def _far(far: float) -> str:
+def _once_in(far: float) -> str:
+    """``1 in N years`` (or days, for a FAR above one per year)."""
+    if far > 1.0:
+        return f"1 in {format_number(365.25 / far)} days"
+    return f"1 in {format_number(1.0 / far)} years"
+
+
+def _far_html(far: float) -> str:
     if _nan(far):
         return _DASH
     if far == 0:
         return "0 per year"
-    return f"{format_number(far)} per year (1 in {format_number(1.0 / far)} years)"
+    return f'{_e(format_number(far))} per year<span class="hint block">{_e(_once_in(far))}</span>'
 
 
 def _value_attr(v) -> str:
@@ -193,8 +202,13 @@ def _headline(r: EventReport) -> str:
              f'{_e(format_duration(c.dt_s))} after merger']
     if c.best_host_id:
         parts.append(f'best host galaxy {_e(c.best_host_id)}')
-    more = len(r.candidates) - 1
-    tail = f' {more} more candidate{"s" if more != 1 else ""} below.' if more > 0 else ""
+    more = r.n_candidates_total - 1
+    if more > 0 and r.n_candidates_total > len(r.candidates):
+        tail = f" {more} more candidates; the best {len(r.candidates)} are listed below."
+    elif more > 0:
+        tail = f' {more} more candidate{"s" if more != 1 else ""} below.'
+    else:
+        tail = ""
     return f'<p class="headline">{", ".join(parts)}.{_e(tail)}</p>'
 
 
@@ -224,19 +238,18 @@ def _prob_bars(probs) -> str:
 
 def _facts(r: EventReport) -> str:
     s = r.shown
-    cur = r.current
     items = [
         ("50% area", _e(_area(s.area50_deg2))),
         ("90% area", _e(_area(s.area90_deg2))),
-        ("distance", _e(_mpc(s.distance_mpc, s.distance_err_mpc)) + ('<span class="hint"> (sky-marginal mean ± std)'
-                                                                     '</span>' if not _nan(s.distance_mpc) else "")),
-        ("FAR", _e(_far(cur.far_per_year if not _nan(cur.far_per_year) else s.far_per_year))),
-        ("p<sub>astro</sub>", _e(format_number(cur.p_astro if not _nan(cur.p_astro) else s.p_astro))),
+        ("distance", _e(_mpc(s.distance_mpc, s.distance_err_mpc)) + ('<span class="hint block">sky-marginal mean ± '
+                                                                     'std</span>' if not _nan(s.distance_mpc) else "")),
+        ("FAR", _far_html(s.far_per_year)),
+        ("p<sub>astro</sub>", _e(format_number(s.p_astro))),
         ("candidates", _e(_candidate_count(r))),
         ("host galaxies", _e(_host_count(r))),
     ]
     dl = "".join(f'<div class="fact"><dt>{k}</dt><dd>{v}</dd></div>' for k, v in items)
-    probs = cur.source_probs or s.source_probs
+    probs = s.source_probs
     return (f'<section class="facts" id="summary"><h2>Summary of revision {s.revision}</h2>'
             f'<div class="facts-grid"><dl>{dl}</dl>'
             f'<div class="probs"><h3>source probabilities</h3>{_prob_bars(probs)}</div></div></section>')
@@ -472,11 +485,12 @@ h1 {{ margin: 4px 0 2px; font-size: 30px; }}
 .headline {{ font-size: 19px; margin: 14px 0 4px; }}
 .headline.withdrawn {{ border: 2px solid var(--ink); padding: 8px 12px; }}
 .facts-grid {{ display: flex; flex-wrap: wrap; gap: 12px 40px; align-items: flex-start; }}
-.facts dl {{ display: grid; grid-template-columns: repeat(auto-fill, minmax(170px, 1fr)); gap: 10px 24px; margin: 0;
+.facts dl {{ display: grid; grid-template-columns: repeat(auto-fill, minmax(200px, 1fr)); gap: 10px 24px; margin: 0;
   flex: 1 1 560px; }}
 .fact dt {{ font-size: 12px; text-transform: uppercase; letter-spacing: .05em; color: var(--muted); }}
 .fact dd {{ margin: 0; font-size: 17px; font-variant-numeric: tabular-nums; }}
 .hint {{ color: var(--muted); font-size: 13px; }}
+.hint.block {{ display: block; }}
 .probs {{ flex: 0 1 320px; }}
 table.bars {{ border-collapse: collapse; width: 100%; }}
 table.bars th {{ text-align: left; font-weight: 400; padding: 1px 8px 1px 0; font-size: 13px; width: 6.5em; }}

@@ -2,7 +2,7 @@
 
 Pure: tables are built from an :class:`~matcher.report.model.EventReport`
 and rendered to bytes in memory; the caller writes the files. Columns carry
-their units; missing numbers are NaN, a missing best host is ``""``. Floats
+their units; missing numbers are NaN, a missing best host is a masked cell. Floats
 are written at full precision (ECSV writes ``repr``; VOTable cells are
 float64), so a table read back with astropy equals the values the report
 shows in its ``data-value`` attributes.
@@ -14,9 +14,9 @@ import io
 
 import astropy.units as u
 import numpy as np
-from astropy.table import Table
+from astropy.table import MaskedColumn, Table
 
-from matcher.report.model import CANDIDATE_FIELDS, HOST_FIELDS, EventReport
+from matcher.report.model import EventReport
 
 __all__ = ["candidates_table", "hosts_table", "ecsv_bytes", "votable_bytes", "CANDIDATE_COLUMNS", "HOST_COLUMNS"]
 
@@ -77,7 +77,12 @@ def _column(rows, name: str):
 def _table(rows, columns, meta) -> Table:
     t = Table(meta=meta)
     for name, (col, unit, desc) in columns.items():
-        t[col] = _column(rows, name)
+        values = _column(rows, name)
+        if name in _STR_FIELDS and values.size and (values == "").any():
+            # A missing string (no best host) is a masked cell: ECSV and VOTable read it back masked.
+            t[col] = MaskedColumn(values, mask=values == "")
+        else:
+            t[col] = values
         if unit is not None:
             t[col].unit = unit
         t[col].description = desc
