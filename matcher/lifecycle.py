@@ -672,18 +672,20 @@ class Matcher:
         order.sort()
         k = self.settings.top_ranks
         dec = self.settings.p_assoc_decimals
+        items = []
         for rank, (negp, _, _, tid) in enumerate(order, start=1):
             value = (round(-negp, dec), rank if rank <= k else None)
             if tid not in new and value == ev.published.get(tid, (0.0, None)):
                 continue
             rec = dict(ev.static[tid])
             rec["p_assoc"], rec["rank"] = value
-            if tx.put_result(ev.event_id, ev.revision, tid, rec) is not None:
-                stats.written += 1
+            items.append((ev.event_id, ev.revision, tid, rec))
             if value == (0.0, None):
                 ev.published.pop(tid, None)
             else:
                 ev.published[tid] = value
+        # One bulk write (same rows and outbox order as one put_result per record, far fewer round trips).
+        stats.written += len(tx.put_results(items))
         for tid in list(ev.static):
             if tid not in ev.published and tid not in tops:
                 del ev.static[tid]

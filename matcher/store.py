@@ -586,6 +586,73 @@ class Transaction:
              rec.get("fap"), rec.get("odds"), rec.get("rank"), text, seq, self._now))
         return ResultRow(key, event_id, int(revision), transient_id, status, rec, seq)
 
+    def put_results(self, items) -> list[ResultRow]:
+        """Many :meth:`put_result` calls in one go (same rules, same rows, same outbox order).
+
+        Parameters
+        ----------
+        items : iterable of ``(event_id, revision, transient_id, record)`` or
+            ``(event_id, revision, transient_id, record, status)``; each key at most once.
+
+        Returns
+        -------
+        list of ResultRow
+            The rows that changed, in the order given (unchanged ones are skipped).
+        """
+        prepared = []
+        states: dict[str, Any] = {}
+        seen: set[str] = set()
+        for item in items:
+            event_id, revision, transient_id, record = item[:4]
+            status = item[4] if len(item) > 4 else "current"
+            if status not in RESULT_STATUSES:
+                raise ValueError(f"status must be one of {', '.join(RESULT_STATUSES)}, got {status!r}")
+            if event_id not in states:
+                states[event_id] = self._event_state(event_id)
+            ev = states[event_id]
+            if ev is None:
+                raise ValueError(f"result for unknown event {event_id!r}: store the alert first")
+            if revision > ev[0]:
+                raise ValueError(f"result for {event_id} revision {revision}, newer than its stored revision {ev[0]}")
+            if ev[1] == "withdrawn":
+                status = "withdrawn"
+            elif revision < ev[0] and status == "current":
+                status = "superseded"
+            key = result_key(event_id, revision, transient_id)
+            if key in seen:
+                raise ValueError(f"result {key} given twice in one put_results call")
+            seen.add(key)
+            rec = dict(json.loads(_dumps(record)))
+            rec.update(key=key, event_id=event_id, revision=int(revision), transient_id=transient_id, status=status)
+            prepared.append((key, event_id, int(revision), transient_id, status, rec, _dumps(rec)))
+        if not prepared:
+            return []
+        old: dict[str, str] = {}
+        keys = [p[0] for p in prepared]
+        for i in range(0, len(keys), 900):  # SQLite's default limit on bound parameters is 999
+            chunk = keys[i:i + 900]
+            old.update(self._db.execute(
+                f"SELECT key, record FROM results WHERE key IN ({','.join('?' * len(chunk))})", chunk).fetchall())
+        changed = [p for p in prepared if old.get(p[0]) != p[6]]
+        if not changed:
+            return []
+        # Explicit outbox sequence numbers continue AUTOINCREMENT's counter (we hold the write lock).
+        row = self._db.execute("SELECT seq FROM sqlite_sequence WHERE name='outbox'").fetchone()
+        top = self._db.execute("SELECT COALESCE(MAX(seq), 0) FROM outbox").fetchone()[0]
+        base = max(row[0] if row else 0, top)
+        now = self._now
+        self._db.executemany("INSERT INTO outbox (seq, kind, key, payload, created_at) VALUES (?,?,?,?,?)",
+                             [(base + n, "match", p[0], p[6], now) for n, p in enumerate(changed, 1)])
+        self._db.executemany(
+            "INSERT INTO results VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?) ON CONFLICT(key) DO UPDATE SET"
+            " status=excluded.status, class=excluded.class, p_assoc=excluded.p_assoc, fap=excluded.fap,"
+            " odds=excluded.odds, rank=excluded.rank, record=excluded.record, seq=excluded.seq,"
+            " updated_at=excluded.updated_at",
+            [(k, e, r, t, s, rec.get("class"), rec.get("p_assoc"), rec.get("fap"), rec.get("odds"),
+              rec.get("rank"), text, base + n, now)
+             for n, (k, e, r, t, s, rec, text) in enumerate(changed, 1)])
+        return [ResultRow(k, e, r, t, s, rec, base + n) for n, (k, e, r, t, s, rec, text) in enumerate(changed, 1)]
+
     def _restatus(self, rows, status: str) -> list[ResultRow]:
         out = []
         for key, event_id, revision, transient_id, text in rows:

@@ -265,3 +265,37 @@ def test_bulk_writes_equal_one_by_one(folder):
         assert table_rows(one, table, cols) == table_rows(bulk, table, cols), table
     one.close()
     bulk.close()
+
+
+def _store_contents(s):
+    rows = [(r.key, r.status, r.record) for r in s.results()]
+    out = [(o.kind, o.key, o.payload) for o in s.outbox_after(0, 10_000)]
+    return rows, out
+
+
+def test_bulk_put_results_equals_one_by_one(tmp_path):
+    # put_results is a faster path for the service; it must leave exactly what the same
+    # put_result calls leave (results, statuses, outbox rows in order), unchanged rows skipped.
+    (tmp_path / "map.fits").write_bytes(tiny_map_bytes())
+    stores = [Store(tmp_path / f"s{i}" / "m.sqlite") for i in range(2)]
+    recs = [("EV-TEST-1", 1, f"T{i}", {"class": "optical", "p_assoc": i / 10, "odds": i / 3, "rank": i})
+            for i in range(5)]
+    try:
+        for s in stores:
+            put(s, item(gw(revision=1), tmp_path, 1), *[item(transient(tid=f"T{i}"), tmp_path, 2 + i) for i in range(5)])
+        with stores[0].transaction() as tx:
+            for r in recs:
+                tx.put_result(*r)
+            tx.put_result(*recs[2])  # unchanged: nothing new
+            tx.put_result("EV-TEST-1", 1, "T3", {**recs[3][3], "p_assoc": 0.99})
+        with stores[1].transaction() as tx:
+            assert len(tx.put_results(recs)) == 5
+            assert tx.put_results([recs[2]]) == []
+            changed = tx.put_results([("EV-TEST-1", 1, "T3", {**recs[3][3], "p_assoc": 0.99})])
+            assert [r.key for r in changed] == ["EV-TEST-1/1/T3"]
+            with pytest.raises(ValueError, match="given twice"):
+                tx.put_results([recs[0], recs[0]])
+        assert _store_contents(stores[0]) == _store_contents(stores[1])
+    finally:
+        for s in stores:
+            s.close()
