@@ -106,7 +106,7 @@ catalog: {path: galaxies.fits, columns: {ra_deg: RA}}
         "ra_deg": {"path": "r", "unit": "grad"}}}}}}, "sources.a.codec.fields.ra_deg.unit", "unknown angle unit"),
     ({"sources": {"a b": {"kind": "inbox", "path": "x"}}}, "sources", "names must be"),
     ({"sinks": {"m": {"kind": "jsonl"}}}, "sinks.m.path", "is required"),
-    ({"sinks": {"m": {"kind": "kafka", "topic": "t"}}}, "sinks.m.kind", "unknown sink kind"),
+    ({"sinks": {"m": {"kind": "carrier-pigeon", "topic": "t"}}}, "sinks.m.kind", "unknown sink kind"),
     ({"sinks": {"m": {"kind": "sqlite", "path": "x", "table": "drop table"}}}, "sinks.m.table", "identifier"),
     ({"sinks": {"m": {"kind": "jsonl", "path": "x", "kinds": []}}}, "sinks.m.kinds", "at least one"),
     ({"limits": {"url_allow_list": ["http://maps.example.org/"]}}, "limits.url_allow_list[0]", "https URL prefix"),
