@@ -236,3 +236,46 @@ def test_injected_positions_are_drawn_from_the_map():
     assert stats.kstest(m.credible_level(inj.batch.ra_deg, inj.batch.dec_deg), "uniform").pvalue > 0.01
     dt = inj.batch.time - 5e5
     assert stats.kstest(dt, "uniform", args=(100, 300)).pvalue > 0.01
+
+
+# ------------------------------------------------------------------ archive
+def test_archive_keeps_latest_revisions_and_drops_withdrawn_events(tmp_path):
+    import json
+
+    from matcher.sky import moc_fits_bytes
+    from matcher.tune import read_archive
+
+    m = synthetic_skymap([Blob(10.0, 20.0, kappa_for_area(200.0))], distance=None, max_order=5, pixel_prob=1e-2)
+    (tmp_path / "m.fits").write_bytes(moc_fits_bytes(m))
+    alert = {"schema": "matcher/1", "type": "gw_alert", "localization": {"path": "m.fits"}}
+    msgs = [
+        {**alert, "event_id": "EV-A", "revision": 1, "state": "issued", "merger_time": "2026-03-01T00:00:00Z"},
+        {**alert, "event_id": "EV-A", "revision": 3, "state": "revised", "merger_time": "2026-03-01T00:00:02Z"},
+        {**alert, "event_id": "EV-A", "revision": 2, "state": "revised", "merger_time": "2026-03-01T00:00:01Z"},
+        {**alert, "event_id": "EV-B", "revision": 1, "state": "issued", "merger_time": "2026-03-02T00:00:00Z"},
+        {"schema": "matcher/1", "type": "gw_alert", "event_id": "EV-B", "revision": 2, "state": "withdrawn",
+         "merger_time": "2026-03-02T00:00:00Z"},
+        {"schema": "matcher/1", "type": "transient", "transient_id": "T1", "class": "flash", "ra_deg": 1.0,
+         "dec_deg": 2.0, "time": "2026-03-01T01:00:00Z"},
+        {"schema": "matcher/1", "type": "transient", "transient_id": "T1", "class": "flash", "ra_deg": 1.5,
+         "dec_deg": 2.0, "time": "2026-03-01T02:00:00Z"},
+        {"schema": "matcher/1", "type": "transient", "transient_id": "T2", "class": "flash", "ra_deg": 3.0,
+         "dec_deg": 4.0, "time": "2026-03-01T03:00:00Z", "localization": {"path": "m.fits"}},
+        {"schema": "matcher/1", "type": "transient", "transient_id": "T3", "class": "flash", "ra_deg": 3.0,
+         "dec_deg": 4.0, "time": "2026-03-01T03:00:00Z", "localization": {"path": "absent.fits"}},
+    ]
+    (tmp_path / "a.jsonl").write_text("\n".join(json.dumps(x) for x in msgs) + "\nnot json\n")
+    a = read_archive(tmp_path / "a.jsonl")
+    assert [x.event_id for x in a.alerts] == ["EV-A"] and a.alerts[0].revision == 3
+    assert a.reports.transient_id.tolist() == ["T1", "T2"]  # T1's first line; T3's map is missing
+    assert a.reports.ra_deg[0] == 1.0
+    assert a.report_maps is not None and a.report_maps[0] is None and a.report_maps[1] is not None
+    assert any("line 10" in r for r in a.rejected) and any("T3" in r for r in a.rejected)
+    assert any("withdrawn" in n and "EV-B" in n for n in a.notes)
+    # Reports with their own maps go through the engine's map overlap in the slides.
+    from matcher.tune import prepare, run_all
+
+    plan, _ = prepare(a, CLASSES, parse_tuning({"slides": 4, "injections": 10}, CLASSES), ["flash"], 1)
+    counts, _ = run_all(plan, progress_mode="off")
+    c = counts[0]["flash"]
+    assert c.slides == 4 and c.injections == 10 and c.candidates >= c.scored

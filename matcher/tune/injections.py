@@ -11,6 +11,8 @@ For each injection (pure computation, seeded):
 4. the reported position scattered by the class's 1σ error (a Fisher density with
    ``κ = 1/σ²``, sampled exactly: ``1 - cos θ = -ln(1 - u (1 - e^{-2κ}))/κ``,
    Fisher 1953, Proc. R. Soc. A 217, 295), and, for a fraction of them, a measured
+   distance: either a host redshift ``z(d) + σ_z N(0, 1)`` with error ``σ_z`` (as the
+   archive's reports give theirs; ``z(d)`` from the engine's cosmology), or a
    distance ``d (1 + e N(0, 1))`` with error ``e`` times the measured value.
 
 Injections that are not observed stay in the count (they are missed at every threshold).
@@ -23,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from matcher.coincidence.batch import ReportBatch
+from matcher.coincidence.cosmology import redshift_at_distance
 from matcher.sky.coords import radec_to_vec, vec_to_radec
 from matcher.sky.skymap import SkyMap
 from matcher.tune.settings import DelayModel
@@ -77,7 +80,7 @@ def scatter_positions(ra_deg, dec_deg, sigma_deg: float, rng: np.random.Generato
 
 def draw_injections(klass_name: str, merger_time_s: float, skymap: SkyMap, delay: DelayModel, coverage, n: int,
                     rng: np.random.Generator, *, pos_err_deg: float, distance_fraction: float,
-                    distance_rel_err: float) -> InjectionSet:
+                    distance_rel_err: float, redshift_err: float | None = None) -> InjectionSet:
     """Draw ``n`` counterparts and observe them (see the module docstring).
 
     Parameters
@@ -96,7 +99,9 @@ def draw_injections(klass_name: str, merger_time_s: float, skymap: SkyMap, delay
     distance_fraction : float
         Fraction of injections reported with a measured distance.
     distance_rel_err : float
-        Relative 1σ error of those distances.
+        Relative 1σ error of those distances (when ``redshift_err`` is None).
+    redshift_err : float, optional
+        Give the measured distance as a host redshift with this 1σ error instead.
     """
     drawn = skymap.sample(n, rng)
     ra, dec = drawn[0], drawn[1]
@@ -107,13 +112,23 @@ def draw_injections(klass_name: str, merger_time_s: float, skymap: SkyMap, delay
     with_d = rng.uniform(size=n) < distance_fraction
     noise = rng.standard_normal(n)
     observed, t_rep, lnd = coverage.observe(ra, dec, onset)
-    d_obs = np.where(with_d & np.isfinite(dist), np.maximum(dist * (1.0 + distance_rel_err * noise), 1e-3 * dist), np.nan)
-    d_err = np.where(np.isfinite(d_obs), distance_rel_err * d_obs, np.nan)
+    has = with_d & np.isfinite(dist) & (dist > 0)
+    nan = np.full(n, np.nan)
+    z = z_err = d_obs = d_err = nan
+    if redshift_err is not None:
+        z_true = np.full(n, np.nan)
+        if np.any(has):
+            z_true[has] = redshift_at_distance(dist[has])
+        z = np.where(has, np.clip(z_true + redshift_err * noise, 1e-5, 20.0), np.nan)
+        z_err = np.where(has, float(redshift_err), np.nan)
+    else:
+        d_obs = np.where(has, np.maximum(dist * (1.0 + distance_rel_err * noise), 1e-3 * dist), np.nan)
+        d_err = np.where(has, distance_rel_err * d_obs, np.nan)
     idx = np.flatnonzero(observed)
     ids = np.char.add(f"INJ-{klass_name}-", idx.astype(str))
     batch = ReportBatch.from_arrays(
         ids, klass_name, rep_ra[idx], rep_dec[idx], t_rep[idx],
-        pos_err_deg=np.full(idx.size, float(pos_err_deg)),
-        last_nondetection=lnd[idx], distance_mpc=d_obs[idx], distance_err_mpc=d_err[idx],
+        pos_err_deg=np.full(idx.size, float(pos_err_deg)), last_nondetection=lnd[idx],
+        redshift=z[idx], redshift_err=z_err[idx], distance_mpc=d_obs[idx], distance_err_mpc=d_err[idx],
     )
     return InjectionSet(n, observed, delta, batch)

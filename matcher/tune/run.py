@@ -51,7 +51,16 @@ from matcher.tune.background import (
 from matcher.tune.injections import draw_injections
 from matcher.tune.scan import AlertCounts, ClassScan, count_passes, model_false_per_event, scan_class
 from matcher.tune.settings import ClassTuning, DelayModel, TuningSettings, fap_thresholds, window_grid
-from matcher.tune.slides import SlidePlan, plan_slides, sky_bound, sky_bound_keep, slid_candidates
+from matcher.tune.slides import (
+    BOUND_MAX_SIGMA_DEG,
+    SlidePlan,
+    area_denser_than,
+    density_bound,
+    plan_slides,
+    sky_bound,
+    sky_bound_keep,
+    slid_candidates,
+)
 
 __all__ = ["ClassData", "TunePlan", "prepare", "run_alert", "run_all", "summarize", "TuneResult", "SCORE_CHUNK"]
 
@@ -59,6 +68,8 @@ __all__ = ["ClassData", "TunePlan", "prepare", "run_alert", "run_all", "summariz
 SCORE_CHUNK = 200_000
 #: Default relative error of injected distances when the archive gives none to copy (assumption).
 DEFAULT_DISTANCE_REL_ERR = 0.1
+#: Default error of injected host redshifts when the archive's redshifts give none (assumption).
+DEFAULT_REDSHIFT_ERR = 0.001
 
 
 @dataclass(frozen=True, eq=False)
@@ -84,6 +95,8 @@ class ClassData:
         No own map and no distance (the sky bound may apply).
     footprint, live, rate, coverage, slides
     inj_pos_err_deg, inj_distance_fraction, inj_distance_rel_err : float
+    inj_redshift_err : float or None
+        Injected distances are host redshifts with this error (None: distances).
     model_fpe : ndarray, (windows, thresholds)
     notes : tuple of str
         How each derived quantity was obtained, for the output.
@@ -107,6 +120,7 @@ class ClassData:
     inj_pos_err_deg: float
     inj_distance_fraction: float
     inj_distance_rel_err: float
+    inj_redshift_err: float | None
     model_fpe: np.ndarray
     notes: tuple[str, ...]
 
@@ -189,15 +203,24 @@ def _prepare_class(name: str, klass: CounterpartClass, tuning: ClassTuning, batc
         dfrac = float(has_d.mean()) if has_d.size else 0.0
         if dfrac > 0:
             notes.append(f"injections with a measured distance: {dfrac:.1%}, as in the archive")
+    # Measured distances like the archive's: host redshifts with its typical redshift error when most of
+    # its distances are redshifts, else distances with its typical relative error.
+    zerr_given = cols["z_err"][np.isfinite(cols["z"]) & np.isfinite(cols["z_err"])]
+    n_z = int(np.isfinite(cols["z"]).sum())
+    n_d = int(np.isfinite(cols["d"]).sum())
+    z_err = None
     if tuning.distance_rel_err is not None:
         drel = tuning.distance_rel_err
     else:
-        rel = np.concatenate([(cols["d_err"] / cols["d"])[np.isfinite(cols["d_err"]) & np.isfinite(cols["d"])],
-                              (cols["z_err"] / cols["z"])[np.isfinite(cols["z_err"]) & (cols["z"] > 0)]])
+        rel = (cols["d_err"] / cols["d"])[np.isfinite(cols["d_err"]) & np.isfinite(cols["d"])]
         drel = float(np.clip(np.median(rel), 1e-3, 1.0)) if rel.size else DEFAULT_DISTANCE_REL_ERR
+        if n_z > n_d:
+            z_err = float(np.median(zerr_given)) if zerr_given.size else DEFAULT_REDSHIFT_ERR
+            if dfrac > 0:
+                notes.append(f"injected distances are host redshifts with error {z_err:.3g}, as in the archive")
     model = model_false_per_event(f, windows, L, klass.rate_per_sr_per_s)
     return ClassData(name, klass, tuning, delay, windows, configured, cols, maps, L, ~has_map & ~has_d, fp, live,
-                     rate, coverage, splan, float(pos_err), float(dfrac), float(drel), model, tuple(notes))
+                     rate, coverage, splan, float(pos_err), float(dfrac), float(drel), z_err, model, tuple(notes))
 
 
 def prepare(archive: ArchiveContents, classes: Mapping[str, CounterpartClass], settings: TuningSettings,
@@ -269,7 +292,7 @@ def _alert_class(plan: TunePlan, alert, skymap, bound, cd: ClassData) -> AlertCo
     n_inj = plan.settings.injections
     inj = draw_injections(cd.name, alert.merger_time, skymap, cd.delay, cd.coverage, n_inj, rng,
                           pos_err_deg=cd.inj_pos_err_deg, distance_fraction=cd.inj_distance_fraction,
-                          distance_rel_err=cd.inj_distance_rel_err)
+                          distance_rel_err=cd.inj_distance_rel_err, redshift_err=cd.inj_redshift_err)
     found = np.zeros((J, I), np.int64)
     matches = np.zeros((J, I), np.int64)
     events = np.zeros((J, I), np.int64)
@@ -279,6 +302,21 @@ def _alert_class(plan: TunePlan, alert, skymap, bound, cd: ClassData) -> AlertCo
     lo_all, hi_all = cd.extent_s
     Lmax = float(cd.brackets_s.max()) if cd.brackets_s.size else 0.0
     rows, shift, slide = slid_candidates(c["time"], cd.slides, alert.merger_time, lo_all, hi_all, Lmax)
+    n_candidates = int(rows.size)
+    mu_cap = float(f_mu[-1]) * (1 + 1e-9)
+    i_upper = None
+    if plan.use_bound and bound is not None and rows.size:
+        # Once per alert, for every window at once (see sky_bound_keep): T max(L, W) <= 1 and W >= the
+        # shortest window, so mu >= r max(L, W_min) A(rho >= 2 I_upper) whatever the window and the slide.
+        i_rep = density_bound(bound, c["ra"], c["dec"])
+        w_min = min(hi - lo for lo, hi in cd.windows_s)
+        a_rep = area_denser_than(bound, 2.0 * i_rep)
+        point = cd.eligible & (c["sigma"] <= BOUND_MAX_SIGMA_DEG)
+        lb = cd.klass.rate_per_sr_per_s * np.maximum(cd.brackets_s, w_min) * a_rep
+        sure_out = point & (lb > mu_cap)
+        keep = ~sure_out[rows]
+        rows, shift, slide = rows[keep], shift[keep], slide[keep]
+        i_upper = i_rep[rows]
     t_new = c["time"][rows] + shift
     lnd_new = c["lnd"][rows] + shift
     L = cd.brackets_s[rows]
@@ -299,9 +337,9 @@ def _alert_class(plan: TunePlan, alert, skymap, bound, cd: ClassData) -> AlertCo
         if rows.size == 0 or n_slides == 0:
             continue
         T = time_term(t_new - t_g, L, lo, hi)
-        if plan.use_bound and bound is not None:
-            keep = sky_bound_keep(bound, c["ra"][rows], c["dec"][rows], c["sigma"][rows], cd.eligible[rows], T, L,
-                                  hi - lo, cd.klass.rate_per_sr_per_s, float(f_mu[-1]) * (1 + 1e-9))
+        if i_upper is not None:
+            keep = sky_bound_keep(bound, i_upper, c["sigma"][rows], cd.eligible[rows], T, L, hi - lo,
+                                  cd.klass.rate_per_sr_per_s, mu_cap)
         else:
             keep = T > 0
         k = np.flatnonzero(keep)
@@ -311,7 +349,7 @@ def _alert_class(plan: TunePlan, alert, skymap, bound, cd: ClassData) -> AlertCo
         matches[j] = per_slide.sum(axis=0)
         events[j] = (per_slide > 0).sum(axis=0)
         squares[j] = (per_slide.astype(np.int64) ** 2).sum(axis=0)
-    return AlertCounts(matches, events, squares, found, n_slides, n_inj, int(inj.observed.sum()), int(rows.size),
+    return AlertCounts(matches, events, squares, found, n_slides, n_inj, int(inj.observed.sum()), n_candidates,
                        int(scored))
 
 

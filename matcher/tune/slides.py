@@ -41,6 +41,8 @@ __all__ = [
     "SkyBound",
     "sky_bound",
     "sky_bound_keep",
+    "density_bound",
+    "area_denser_than",
     "BOUND_ORDER",
     "BOUND_MAX_SIGMA_DEG",
 ]
@@ -201,7 +203,22 @@ def sky_bound(skymap: SkyMap) -> SkyBound:
     return SkyBound(dil, table.y, table.cum_w)
 
 
-def sky_bound_keep(bound: SkyBound, ra_deg, dec_deg, sigma_deg, eligible, time_term_s, bracket_s, window_s,
+def density_bound(bound: SkyBound, ra_deg, dec_deg) -> np.ndarray:
+    """Upper bound (sr**-1) on the engine's sky term ``I`` of a report with a 1σ error up to
+    :data:`BOUND_MAX_SIGMA_DEG` at each position: the largest density within one
+    order-:data:`BOUND_ORDER` cell, ×1.05 for the engine's quadrature."""
+    theta = np.radians(90.0 - np.asarray(dec_deg, dtype=np.float64))
+    phi = np.radians(np.asarray(ra_deg, dtype=np.float64))
+    return 1.05 * bound.cell_max[hp.ang2pix(1 << BOUND_ORDER, theta, phi, nest=True)]
+
+
+def area_denser_than(bound: SkyBound, density) -> np.ndarray:
+    """Sky area (sr) of the map's pixels denser than ``density`` (strictly: fewer pixels, still a bound)."""
+    k = np.searchsorted(-bound.y_desc, -np.asarray(density, dtype=np.float64), side="left")
+    return np.where(k > 0, bound.cum_area[np.maximum(k - 1, 0)], 0.0)
+
+
+def sky_bound_keep(bound: SkyBound, i_upper, sigma_deg, eligible, time_term_s, bracket_s, window_s,
                    rate_per_sr_per_s: float, mu_cap: float) -> np.ndarray:
     """Which reports to score: False only where the engine's ``μ`` surely exceeds ``mu_cap``.
 
@@ -213,15 +230,17 @@ def sky_bound_keep(bound: SkyBound, ra_deg, dec_deg, sigma_deg, eligible, time_t
 
         μ ≥ r max(L, W) A(ρ ≥ 2 y*),
 
-    and with ``I`` replaced by an upper bound (the largest density within one
-    order-:data:`BOUND_ORDER` cell, ×1.05 for the engine's quadrature) the bound still holds.
-    ``I`` is the density under the point or its mean over points within 3.4σ ≤ 0.17°, inside
-    the cell's neighbourhood.
+    and with ``I`` replaced by an upper bound (:func:`density_bound`) the bound still holds:
+    ``I`` is the density under the point or its mean over points within 3.4σ ≤ 0.17°,
+    all inside the cell's neighbourhood.
 
     Parameters
     ----------
     bound : SkyBound
-    ra_deg, dec_deg, sigma_deg : ndarray, deg
+    i_upper : ndarray, sr**-1
+        :func:`density_bound` at each report.
+    sigma_deg : ndarray, deg
+        Effective 1σ errors.
     eligible : ndarray of bool
         No own map and no measured distance (the error is checked here).
     time_term_s : ndarray, s**-1
@@ -238,15 +257,9 @@ def sky_bound_keep(bound: SkyBound, ra_deg, dec_deg, sigma_deg, eligible, time_t
     idx = np.flatnonzero(el)
     if idx.size == 0:
         return keep
-    theta = np.radians(90.0 - np.asarray(dec_deg, dtype=np.float64)[idx])
-    phi = np.radians(np.asarray(ra_deg, dtype=np.float64)[idx])
-    cells = hp.ang2pix(1 << BOUND_ORDER, theta, phi, nest=True)
-    i_ub = 1.05 * bound.cell_max[cells]
     L = np.asarray(bracket_s, dtype=np.float64)[idx]
     M = np.maximum(L, window_s)
-    ythr = 2.0 * i_ub * T[idx] * M
-    k = np.searchsorted(-bound.y_desc, -ythr, side="left")  # cells with y > ythr (fewer: still a bound)
-    area = np.where(k > 0, bound.cum_area[np.maximum(k - 1, 0)], 0.0)
+    area = area_denser_than(bound, 2.0 * np.asarray(i_upper, dtype=np.float64)[idx] * T[idx] * M)
     mu_lb = rate_per_sr_per_s * M * area
     keep[idx] = mu_lb <= mu_cap
     return keep

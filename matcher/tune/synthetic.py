@@ -34,6 +34,7 @@ import healpy as hp
 import numpy as np
 
 from matcher.coincidence.classes import DEG2_PER_SR, SECONDS_PER_DAY
+from matcher.coincidence.cosmology import redshift_at_distance
 from matcher.sky import Blob, kappa_for_area, moc_fits_bytes, synthetic_skymap
 from matcher.sky.skymap import SkyMap
 from matcher.timeconv import gps_to_iso
@@ -69,7 +70,8 @@ class SurveySim:
     """A survey (bracketed class) visiting each footprint cell every ``cadence_s``.
 
     ``cells=None`` is the whole sky. ``redshift_fraction`` of the reports carry a
-    host redshift (uniform in 0.005–0.1, error 0.001).
+    host redshift (error 0.001) at a distance drawn uniformly in volume out to
+    ``redshift_reach_mpc`` (the engine's background distance model).
     """
 
     name: str
@@ -80,6 +82,7 @@ class SurveySim:
     clumps: tuple[Clump, ...] = ()
     pos_err_deg: float = 0.0003
     redshift_fraction: float = 0.0
+    redshift_reach_mpc: float = 1000.0
 
 
 @dataclass(frozen=True)
@@ -205,8 +208,11 @@ def _survey(stream: SurveySim, t0: float, span: float, rng):
         dec = np.concatenate([r[3] for r in rows])
     else:
         t = lnd = ra = dec = np.zeros(0)
-    z = np.where(rng.uniform(size=t.size) < stream.redshift_fraction, np.round(rng.uniform(0.005, 0.1, t.size), 4),
-                 np.nan)
+    with_z = rng.uniform(size=t.size) < stream.redshift_fraction
+    r = stream.redshift_reach_mpc * np.cbrt(rng.uniform(1e-6, 1.0, t.size))  # uniform in volume
+    z = np.full(t.size, np.nan)
+    if np.any(with_z):
+        z[with_z] = np.round(redshift_at_distance(r[with_z]), 5)
     return dict(time=t, lnd=lnd, ra=ra, dec=dec, z=z), visits, cells.size * area
 
 
