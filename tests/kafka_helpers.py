@@ -45,21 +45,24 @@ def produce(bootstrap: str, topic: str, values, *, keys=None, partition=None, ma
         producer.close(timeout=10)
 
 
-def read_topic(bootstrap: str, topic: str, expected: int, timeout: float = 60.0) -> list:
-    """Read at least ``expected`` records from the start of every partition of ``topic`` (no group)."""
+def read_topic(bootstrap: str, topic: str, expected: int = 0, timeout: float = 60.0) -> list:
+    """Every record of ``topic`` (no group): read until each partition's end offset, and at least ``expected``."""
     consumer = KafkaConsumer(bootstrap_servers=bootstrap, client_id="test-reader", group_id=None,
                              enable_auto_commit=False, auto_offset_reset="earliest")
     try:
-        parts = consumer.partitions_for_topic(topic)
-        consumer.assign([TopicPartition(topic, p) for p in sorted(parts)])
+        tps = [TopicPartition(topic, p) for p in sorted(consumer.partitions_for_topic(topic))]
+        consumer.assign(tps)
+        consumer.seek_to_beginning(*tps)
         records = []
         deadline = time.monotonic() + timeout
-        while len(records) < expected and time.monotonic() < deadline:
+        ends = consumer.end_offsets(tps)
+        while time.monotonic() < deadline:
             for batch in consumer.poll(timeout_ms=200).values():
                 records.extend(batch)
-        # Then anything beyond ``expected`` that is already there (duplicates would show here).
-        for batch in consumer.poll(timeout_ms=500).values():
-            records.extend(batch)
+            if len(records) >= expected and all(consumer.position(tp) >= ends[tp] for tp in tps):
+                break
+            if len(records) < expected:
+                ends = consumer.end_offsets(tps)  # still being written
         return records
     finally:
         consumer.close()

@@ -59,10 +59,11 @@ def compact_map_fits(ra_deg: float, dec_deg: float, sigma_deg: float, nside: int
 
 @dataclass(frozen=True)
 class Scenario:
-    """Invented input: GW alerts (``bytes`` lines, maps embedded) and transient reports."""
+    """Invented input: GW alerts (``bytes`` lines, maps embedded), transient reports, and the maps' centres (deg)."""
 
     alerts: list
     reports: list
+    centres: list
 
 
 def scenario(n_reports: int, *, n_events: int = 3, seed: int = 2026, sigma_deg: float = 6.0,
@@ -111,7 +112,7 @@ def scenario(n_reports: int, *, n_events: int = 3, seed: int = 2026, sigma_deg: 
             "ra_deg": round(float(ra[j]), 6), "dec_deg": round(float(dec[j]), 6), "pos_err_deg": 0.0003,
             "time": gps_to_iso(float(t[j])), "last_nondetection": gps_to_iso(float(t[j]) - 172800.0),
             "mag": round(float(rng.uniform(18, 23)), 2)}, separators=(",", ":")).encode())
-    return Scenario(alerts, reports)
+    return Scenario(alerts, reports, centres)
 
 
 def _poison():

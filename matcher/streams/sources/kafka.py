@@ -462,6 +462,8 @@ class KafkaSource:
             if st is None:
                 st = self._parts[tp] = _Partition(role)
             stream = stream_name(tp.topic, tp.partition)
+            if st.done is None and recs:
+                st.done = recs[0].offset  # where this instance started on the partition
             for r in recs:
                 data = r.value if r.value is not None else b""
                 size = len(data)
