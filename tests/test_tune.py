@@ -332,3 +332,17 @@ def test_bad_lines_are_reported_and_the_rest_is_used(isotropic, tmp_path):
     s = json.loads(out)
     assert s["lines_rejected"] == 1 and s["reports"] == truth.reports["flash"]
     assert "line 4" in e and "BAD-1" in e
+
+
+def test_a_class_without_room_for_slides_says_so(isotropic, tmp_path):
+    d, truth, config, summ, err = isotropic
+    cfg = tmp_path / "long.yaml"
+    cfg.write_text(yaml.safe_dump({"classes": {"flash": {**_flash_class(0.03), "window_s": [0, 400000]}}}))
+    code, out, e = _run("-c", cfg, "--archive", d / "archive.jsonl", "--out", tmp_path / "o", "--injections", 20,
+                        "--slides", 5, "--json")
+    assert code == 0, e
+    c = json.loads(out)["classes"]["flash"]
+    assert c["slides"] == 0 and c["recommended_window_s"] is None and c["model_check"]["verdict"] == "untested"
+    assert "no slide fits" in e
+    assert "no recommendation" in (tmp_path / "o" / "recommended.yaml").read_text()
+    assert (tmp_path / "o" / "efficiency.png").stat().st_size > 10_000

@@ -197,6 +197,12 @@ def write_ecsv(result: TuneResult, path) -> Path:
 def _plot_class(ax_eff, ax_cal, cd: ClassData, sc: ClassScan) -> None:
     from matcher.report import palette as pal
 
+    if sc.slid_events == 0:
+        for ax in (ax_eff, ax_cal):
+            ax.text(0.5, 0.5, f"{cd.name}: no time slide fits in the archive\n({cd.slides.reason})",
+                    ha="center", va="center", wrap=True, fontsize=9, transform=ax.transAxes)
+            ax.set_axis_off()
+        return
     J = sc.windows_s.shape[0]
     lengths = sc.windows_s[:, 1] - sc.windows_s[:, 0]
     order = np.argsort(lengths, kind="stable")
@@ -301,7 +307,9 @@ def recommended_yaml(result: TuneResult) -> str:
         r = cd.rate
         rec = sc.recommended
         if rec < 0:
-            lines.append(f"# {cd.name}: no recommendation (no window reached the target); kept as configured.")
+            why = (cd.slides.reason if sc.slid_events == 0 else
+                   f"no window holds {sc.target:g} false matches per event within the FAP grid")
+            lines.append(f"# {cd.name}: no recommendation ({why}); kept as configured.")
             lo, hi = k.window_lo_s, k.window_hi_s
         else:
             lo, hi = sc.windows_s[rec]

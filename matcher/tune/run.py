@@ -50,7 +50,14 @@ from matcher.tune.background import (
 )
 from matcher.tune.injections import draw_injections
 from matcher.tune.scan import AlertCounts, ClassScan, count_passes, model_false_per_event, scan_class
-from matcher.tune.settings import ClassTuning, DelayModel, TuningSettings, fap_thresholds, window_grid
+from matcher.tune.settings import (
+    ClassTuning,
+    DelayModel,
+    TuningSettings,
+    configured_window,
+    fap_thresholds,
+    window_grid,
+)
 from matcher.tune.slides import (
     BOUND_MAX_SIGMA_DEG,
     SlidePlan,
@@ -176,8 +183,7 @@ def _prepare_class(name: str, klass: CounterpartClass, tuning: ClassTuning, batc
         notes.append(f"delay model: none configured, injections uniform over the configured window "
                      f"[{klass.window_lo_s:g}, {klass.window_hi_s:g}] s (assumption)")
     windows = window_grid(klass, tuning)
-    conf = (float(f"{klass.window_lo_s:.6g}"), float(f"{klass.window_hi_s:.6g}"))
-    configured = windows.index(conf)
+    configured = windows.index(configured_window(klass))
     fp = estimate_footprint(cols["ra"], cols["dec"], order=tuning.footprint_order)
     live = live_time(cols["time"], tuning.outage_gap_s)
     if klass.sharp_time:

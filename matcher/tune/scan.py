@@ -151,6 +151,8 @@ class ClassScan:
     configured : int
         Index of the configured window.
     fap_thresholds : ndarray, (I,)
+    target : float
+        False matches per event to hold.
     alerts, slides, injections : int
         ``slides`` per alert; ``injections`` per alert.
     observed : int

@@ -47,6 +47,7 @@ __all__ = [
     "TuningSettings",
     "parse_tuning",
     "window_grid",
+    "configured_window",
     "fap_thresholds",
     "DEFAULT_INJECTIONS",
     "DEFAULT_SLIDES",
@@ -281,8 +282,14 @@ def fap_thresholds(settings: TuningSettings) -> np.ndarray:
 
 
 def _tidy(x: float) -> float:
-    """Round a grid edge to 6 significant figures (so grids read well and compare exactly)."""
-    return float(f"{x:.6g}")
+    """Round a grid edge to 12 significant figures: sums like ``lo + f (H - lo)`` then compare exactly
+    (a configured window keeps its value; no real window needs more digits)."""
+    return float(f"{x:.12g}")
+
+
+def configured_window(klass: CounterpartClass) -> tuple[float, float]:
+    """The class's configured window as it appears in :func:`window_grid`."""
+    return _tidy(klass.window_lo_s), _tidy(klass.window_hi_s)
 
 
 def window_grid(klass: CounterpartClass, tuning: ClassTuning) -> tuple[tuple[float, float], ...]:
@@ -294,7 +301,7 @@ def window_grid(klass: CounterpartClass, tuning: ClassTuning) -> tuple[tuple[flo
     configured end and the largest delay; plus the configured window and ``[lowest, largest delay]``.
     The configured window is always in the grid (the reference for the model check).
     """
-    conf = (_tidy(klass.window_lo_s), _tidy(klass.window_hi_s))
+    conf = configured_window(klass)
     if tuning.windows_s is not None:
         grid = {(_tidy(lo), _tidy(hi)) for lo, hi in tuning.windows_s}
         grid.add(conf)
