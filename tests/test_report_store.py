@@ -19,8 +19,8 @@ from matcher.errors import ConfigError, InputError
 from matcher.lifecycle import MatchSettings
 from matcher.report.from_store import event_report_from_store, exact_association
 from matcher.report.settings import ReportSettings, parse_report_settings
-from matcher.report.writer import REPORT_FILES, build_html_writer, event_folder_name, render_report_files, \
-    write_report_files
+from matcher.report.writer import REPORT_FILES, HtmlReportWriter, build_html_writer, event_folder_name, \
+    render_report_files, write_report_files
 from matcher.sky import read_skymap
 from matcher.store import Store
 from report_helpers import demo_replay
@@ -227,6 +227,10 @@ def test_report_settings_from_yaml_mapping(tmp_path):
         parse_report_settings({"max_candidate": 3}, tmp_path, "reports.web")
     with pytest.raises(ConfigError, match=r"config reports.html.dpi: must be <= 600"):
         parse_report_settings({"dpi": 6000}, tmp_path)
+    assert parse_report_settings({"refresh_s": None}, tmp_path).refresh_s is None
+    assert parse_report_settings({}, tmp_path).refresh_s == 60.0
+    with pytest.raises(ConfigError, match=r"config reports.html.refresh_s: must be >= 0"):
+        parse_report_settings({"refresh_s": -1}, tmp_path)
 
 
 def test_html_writer_writes_the_event_folder_and_raises_on_failure(store, tmp_path):
@@ -238,3 +242,37 @@ def test_html_writer_writes_the_event_folder_and_raises_on_failure(store, tmp_pa
         w.on_revision(store, "GW-NOPE", 1, "issued")
     assert (w.written, w.failed) == (1, 1)
     w.close()
+
+
+def test_html_writer_follows_result_changes_between_revisions(replay, tmp_path):
+    import shutil
+
+    shutil.copyfile(replay / "state" / "matcher.sqlite", tmp_path / "copy.sqlite")
+    now = [1000.0]
+    w = HtmlReportWriter("html", parse_report_settings({"out": "r", "refresh_s": 60, "dpi": 30}, tmp_path),
+                         clock=lambda: now[0])
+    with Store(tmp_path / "copy.sqlite") as st:
+        w.after_batch(st)  # not attached: the whole outbox is followed; every event with results is due
+        assert w.written == 2 and w.pending == set()
+        assert sorted(p.name for p in (tmp_path / "r").iterdir()) == sorted([NS, WD])
+        w.after_batch(st)
+        assert w.written == 2  # nothing changed since
+        key = next(r.key for r in st.results(NS) if r.revision == 2)
+        with st.transaction() as tx:  # a result of NS changes (as when a later report arrives)
+            tx.enqueue("match", key, {"event_id": NS})
+        now[0] += 30.0
+        w.after_batch(st)
+        assert w.pending == {NS} and w.written == 2  # written 30 s ago: waits for refresh_s
+        now[0] += 31.0
+        w.after_batch(st)
+        assert w.pending == set() and w.written == 3
+        with st.transaction() as tx:
+            tx.enqueue("match", key, {"event_id": NS})
+        w.after_batch(st)
+        assert w.pending == {NS}
+        w.close()  # the service stops: what waits is written once more
+        assert w.pending == set() and w.written == 4
+    never = HtmlReportWriter("html", parse_report_settings({"out": "r2", "refresh_s": None}, tmp_path))
+    with Store(tmp_path / "copy.sqlite") as st:
+        never.after_batch(st)
+    assert never.written == 0 and not (tmp_path / "r2").exists()

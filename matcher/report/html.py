@@ -176,7 +176,8 @@ def _masthead(r: EventReport) -> str:
                       f'{shown.revision}, the last one with a localization.</p>')
     return (
         '<header class="masthead">'
-        '<p class="kicker">matcher · per-event report</p>'
+        f'<p class="kicker">matcher · per-event report{_e(" · written " + r.generated_at_iso) if r.generated_at_iso else ""}'
+        '</p>'
         f'<h1><span class="event-id">{_e(r.event_id)}</span> '
         f'<span class="badge state-{_e(state)}">{_e(state)}</span></h1>'
         f'<p class="sub">{" · ".join(_e(s) for s in sub)}</p>'

@@ -12,6 +12,8 @@ writes the per-event report folder::
         top_hosts: 20           # host galaxies in the page, hosts.ecsv and hosts.vot (0: none)
         plots: current          # current: the sky plot of the revision shown; all: one per revision with a map
         dpi: 100                # sky plot resolution (100: 1100 × 850 px)
+        refresh_s: 60           # also rewrite a report when the event's results change, at most this often
+                                # (s; 0: after every such batch; null: only on new revisions)
 
 Imports nothing heavy, so that reading a configuration does not pull in matplotlib.
 """
@@ -32,7 +34,7 @@ REPORT_PLOTS = ("current", "all")
 #: Default folder of the per-event report folders (relative to the configuration file).
 DEFAULT_OUT = "reports"
 
-_KEYS = ("out", "max_candidates", "top_hosts", "plots", "dpi")
+_KEYS = ("out", "max_candidates", "top_hosts", "plots", "dpi", "refresh_s")
 
 
 @dataclass(frozen=True)
@@ -48,6 +50,9 @@ class ReportSettings:
     plots : str
         ``current`` or ``all``.
     dpi : float
+    refresh_s : float or None, s
+        The service rewrites an event's report when its results change between revisions,
+        at most once per ``refresh_s`` (and once more when it stops); None: only on new revisions.
     """
 
     out: Path | None = None
@@ -55,6 +60,7 @@ class ReportSettings:
     top_hosts: int = 20
     plots: str = "current"
     dpi: float = 100.0
+    refresh_s: float | None = 60.0
 
 
 def parse_report_settings(raw: Any, base_dir, keypath: str = "reports.html") -> ReportSettings:
@@ -87,4 +93,6 @@ def parse_report_settings(raw: Any, base_dir, keypath: str = "reports.html") -> 
         top_hosts=top_hosts,
         plots=get_str(raw, "plots", keypath, "current", choices=REPORT_PLOTS),
         dpi=get_number(raw, "dpi", keypath, 100.0, lo=20.0, hi=600.0),
+        refresh_s=get_number(raw, "refresh_s", keypath, 60.0, lo=0.0) if raw.get("refresh_s", 60.0) is not None
+        else None,
     )

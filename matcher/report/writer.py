@@ -24,22 +24,26 @@ The service runs the writers named under ``reports:`` (:mod:`matcher.service`,
 
 After a batch has committed and been published, the service calls
 ``on_revision(store, event_id, revision, state)`` for every event that got a new
-revision or was withdrawn; the writer reads the store (so it sees the batch) and
-rewrites that event's folder. A failure raises :class:`~matcher.errors.InputError`;
-the service warns and goes on, since nothing in the store depends on reports, and
-the next revision writes the report again.
+revision or was withdrawn, then ``after_batch(store)``; the writer reads the store
+(so it sees the batch) and rewrites the event folders that are due: at once for a new
+revision, and at most every ``refresh_s`` seconds for an event whose results changed
+since (and once more in ``close()``). A failure raises :class:`~matcher.errors.InputError`;
+the service warns and goes on, since nothing in the store depends on reports, and the
+next change writes the report again.
 """
 
 from __future__ import annotations
 
+import math
 import os
 import time
 import urllib.parse
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Mapping
 
-from matcher.errors import InputError, MatcherError
+from matcher.errors import InputError, MatcherError, MatcherWarning
 from matcher.report.settings import ReportSettings
 
 __all__ = [
@@ -210,11 +214,19 @@ def write_event_report(store, event_id: str, out_dir, config=None, *, settings: 
 class HtmlReportWriter:
     """The ``html`` report writer of the service (``reports.NAME: {kind: html, ...}``).
 
-    Implements :class:`matcher.service.ReportWriter`: after a batch that gave an event a
-    new revision (or withdrew it), :meth:`on_revision` rewrites the event's folder
-    ``OUT/EVENT`` (:func:`event_folder_name`). :meth:`attach` gives it the service, whose
-    configuration supplies the classes and limits and whose in-memory event state
-    supplies the host ranking (without it the stored ``hosts`` output is read).
+    Implements :class:`matcher.service.ReportWriter`:
+
+    * :meth:`on_revision`: after a batch that gave an event a new revision (or withdrew
+      it), rewrite the event's folder ``OUT/EVENT`` (:func:`event_folder_name`);
+    * :meth:`after_batch`: after every batch, note the events whose results changed
+      (the store's outbox since the last look) and rewrite those not written for
+      ``refresh_s`` seconds, so that a report does not stay as it was when the revision
+      arrived while candidates keep coming;
+    * :meth:`close`: rewrite the events still waiting, once, as the service stops.
+
+    :meth:`attach` gives it the service, whose configuration supplies the classes and
+    limits and whose in-memory event state supplies the host ranking (without it the
+    stored ``hosts`` output is read).
 
     Attributes
     ----------
@@ -223,23 +235,35 @@ class HtmlReportWriter:
     written, failed : int
         Reports written, and failures raised to the service (which warns and goes on).
     last : WrittenReport or None
+    pending : set of str
+        Events whose results changed since their report was written.
     """
 
-    def __init__(self, name: str, settings: ReportSettings):
+    def __init__(self, name: str, settings: ReportSettings, *, clock=time.monotonic):
         if settings.out is None:
             raise InputError(f"report writer {name}: no output folder")
         self.name = name
         self.settings = settings
         self.config = None
         self._service = None
+        self._store = None
+        self._clock = clock
+        self._cursor: int | None = None
+        self._written_at: dict[str, float] = {}
+        self._written_seq: dict[str, int] = {}
+        self.pending: set[str] = set()
         self.written = 0
         self.failed = 0
         self.last: WrittenReport | None = None
 
     def attach(self, service) -> None:
-        """Called by the service once it has built its matcher."""
+        """Called by the service once it has built its matcher: results stored before now are in
+        the reports already written (or will be, with the next revision), so follow from here."""
         self._service = service
         self.config = getattr(service, "config", None)
+        store = getattr(service, "store", None)
+        if store is not None:
+            self._cursor = store.last_seq()
 
     def folder(self, event_id: str) -> Path:
         return Path(self.settings.out) / event_folder_name(event_id)
@@ -249,8 +273,8 @@ class HtmlReportWriter:
         ev = None if matcher is None else matcher.events.get(event_id)
         return None if ev is None else ev.ranking
 
-    def on_revision(self, store, event_id: str, revision: int, state: str) -> None:
-        """Rewrite the event's report (raises ``InputError`` when it cannot; the service warns)."""
+    def _write(self, store, event_id: str) -> None:
+        seq = store.last_seq()
         try:
             self.last = write_event_report(store, event_id, self.folder(event_id), self.config,
                                            settings=self.settings, ranking=self._ranking(event_id))
@@ -258,9 +282,59 @@ class HtmlReportWriter:
             self.failed += 1
             raise
         self.written += 1
+        self._written_at[event_id] = self._clock()
+        self._written_seq[event_id] = seq
+        self.pending.discard(event_id)
+
+    def on_revision(self, store, event_id: str, revision: int, state: str) -> None:
+        """Rewrite the event's report (raises ``InputError`` when it cannot; the service warns)."""
+        self._store = store
+        self._write(store, event_id)
+
+    def after_batch(self, store) -> None:
+        """Follow result changes since the last call; rewrite the reports that are due.
+
+        Raises
+        ------
+        InputError
+            Naming every event whose report could not be written (the others are written).
+        """
+        self._store = store
+        if self.settings.refresh_s is None:
+            return
+        if self._cursor is None:  # not attached to a service: follow the whole outbox
+            self._cursor = 0
+        while rows := store.outbox_after(self._cursor, 5000):
+            for row in rows:
+                if row.kind == "match":
+                    eid = urllib.parse.unquote(row.key.split("/", 1)[0])
+                    if row.seq > self._written_seq.get(eid, 0):
+                        self.pending.add(eid)
+            self._cursor = rows[-1].seq
+        now = self._clock()
+        due = sorted(e for e in self.pending if now - self._written_at.get(e, -math.inf) >= self.settings.refresh_s)
+        self._write_all(store, due)
+
+    def _write_all(self, store, events) -> None:
+        errors = []
+        for eid in events:
+            try:
+                self._write(store, eid)
+            except (MatcherError, OSError) as exc:
+                errors.append(f"event {eid}: {exc}")
+        if errors:
+            raise InputError("; ".join(errors))
 
     def close(self) -> None:
+        """Rewrite the reports still waiting for their refresh (warns when one cannot be written)."""
+        store, self._store = self._store, None
         self._service = None
+        if store is None or not self.pending:
+            return
+        try:
+            self._write_all(store, sorted(self.pending))
+        except InputError as exc:
+            warnings.warn(f"report {self.name}: {exc}", MatcherWarning, stacklevel=2)
 
 
 def build_html_writer(name: str, options: Mapping, base_dir: Path) -> HtmlReportWriter:
