@@ -347,7 +347,7 @@ class Service:
         return sum(p.publish() for p in self.publishers)
 
     def _write_reports(self, stats: ApplyStats) -> None:
-        if not self.writers or not stats.events_changed:
+        if not self.writers:
             return
         for event_id, revision, state in stats.events_changed:
             for w in self.writers:
@@ -356,6 +356,13 @@ class Service:
                 except (MatcherError, OSError) as exc:
                     warnings.warn(f"report {w.name}: event {event_id} revision {revision}: {exc}",
                                   MatcherWarning, stacklevel=2)
+        for w in self.writers:  # writers that also follow result changes between revisions
+            follow = getattr(w, "after_batch", None)
+            if follow is not None:
+                try:
+                    follow(self.store)
+                except (MatcherError, OSError) as exc:
+                    warnings.warn(f"report {w.name}: {exc}", MatcherWarning, stacklevel=2)
 
     # -------------------------------------------------------------- shutdown
     def _close_parts(self) -> None:
