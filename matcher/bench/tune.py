@@ -33,7 +33,8 @@ def register(sub) -> None:
     p.add_argument("--jobs", type=int, default=1, help="worker processes (default 1)")
     p.add_argument("--baseline-alerts", type=int, default=1, help="alerts run without the sky bound (default 1)")
     p.add_argument("--seed", type=int, default=2027)
-    p.add_argument("--workdir", help="folder for the archive and outputs (default: a temporary folder)")
+    p.add_argument("--workdir", help="folder for the archive and outputs, kept afterwards (default: a temporary "
+                   "folder, removed afterwards); its archive/ subfolder must not exist or be empty")
     p.set_defaults(func=run)
 
 
@@ -56,6 +57,13 @@ def bench_config() -> dict:
 
 
 def run(args) -> int:
+    if args.workdir:
+        return _run(args, Path(args.workdir))
+    with tempfile.TemporaryDirectory(prefix="matcher-bench-tune-") as tmp:  # removed afterwards
+        return _run(args, Path(tmp))
+
+
+def _run(args, work: Path) -> int:
     import numpy as np
     import yaml
     from rich.console import Console
@@ -69,9 +77,11 @@ def run(args) -> int:
         if getattr(args, name) < (0 if name == "baseline_alerts" else 1):
             con.print(f"[red]--{name.replace('_', '-')} must be positive[/red]")
             return 2
-    work = Path(args.workdir) if args.workdir else Path(tempfile.mkdtemp(prefix="matcher-bench-tune-"))
     work.mkdir(parents=True, exist_ok=True)
     archive_dir = work / "archive"
+    if archive_dir.exists() and any(archive_dir.iterdir()):
+        con.print(f"[red]{archive_dir} is not empty[/red]: give a new --workdir (nothing was overwritten)")
+        return 2
     t = time.perf_counter()
     truth = write_synthetic_archive(
         archive_dir, seed=args.seed, alerts=args.alerts, span_days=args.span_days,
