@@ -53,6 +53,8 @@ _NAN = math.nan
 #: Candidates labelled on the report's sky plot: the table beside it lists every rank, and more
 #: labels crowd a small region (the demo's 35 deg² map with 100 candidates).
 _PLOT_LABELS = 5
+#: Candidates drawn on the sky plot at most (the best ones; unlabelled stars beyond the first few).
+_PLOT_MAX = 10_000
 
 
 def _f(v) -> float:
@@ -302,8 +304,12 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
 
     notes: list[str] = []
     reports = _transients(store, shown.alert.merger_time, classes)
-    cands, n_total = _candidate_rows(per_rev.get(shown.alert.revision, []), reports, classes,
-                                     settings.max_candidates, notes)
+    # Every candidate (up to _PLOT_MAX) is drawn; the table and candidates.ecsv hold the best max_candidates.
+    drawn, n_total = _candidate_rows(per_rev.get(shown.alert.revision, []), reports, classes,
+                                     max(settings.max_candidates, _PLOT_MAX), notes)
+    cands = drawn[:settings.max_candidates]
+    if n_total > len(drawn):
+        notes.append(f"The sky plot shows the best {len(drawn):,} of {n_total:,} candidates.")
 
     top = settings.top_hosts
     hosts: list[HostRow] = []
@@ -325,14 +331,13 @@ def event_report_from_store(store, event_id: str, config=None, *, settings: Repo
     figures = []
     if shown.localization_sha:
         skymap = maps.get(shown.localization_sha, f"event {event_id} revision {shown.alert.revision}")
-        figures.append(_plot(skymap, cands, hosts, event_id, shown.alert, settings.dpi,
+        figures.append(_plot(skymap, drawn, hosts, event_id, shown.alert, settings.dpi,
                              f"Revision {shown.alert.revision}"))
     if settings.plots == "all":
         for sr in reversed(with_map):
             if sr is shown:
                 continue
-            older, _ = _candidate_rows(per_rev.get(sr.alert.revision, []), reports, classes,
-                                       settings.max_candidates, [])
+            older, _ = _candidate_rows(per_rev.get(sr.alert.revision, []), reports, classes, _PLOT_MAX, [])
             figures.append(_plot(maps.get(sr.localization_sha, f"event {event_id} revision {sr.alert.revision}"),
                                  older, (), event_id, sr.alert, settings.dpi, f"Revision {sr.alert.revision}"))
     if shown is not current:
