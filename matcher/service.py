@@ -64,6 +64,11 @@ class ReportWriter(Protocol):
     revision's state (``issued``, ``revised`` or ``withdrawn``). A writer that fails
     raises :class:`~matcher.errors.MatcherError` or ``OSError``: the service warns and
     goes on (a report never stops the matching).
+
+    Optional: ``attach(service)`` is called once the matcher is built (a writer may read
+    ``service.config`` and the matcher's in-memory events), and ``after_batch(store)``
+    after every batch's ``on_revision`` calls (to follow result changes between
+    revisions). :class:`matcher.report.writer.HtmlReportWriter` (kind ``html``) has both.
     """
 
     name: str
