@@ -24,6 +24,7 @@ Sections::
     classes: {...}                   # counterpart classes (matcher.coincidence.parse_classes)
     catalog: {...}                   # galaxy catalogue settings, kept as given for matcher.catalog
     reports: {...}                   # per-event report writers, kept as given for matcher.service
+    tuning: {...}                    # offline window tuning, kept as given for matcher.tune
 
 The ``classes`` section is parsed by :func:`matcher.coincidence.parse_classes` when
 the configuration is loaded (so a bad class fails early); without one,
@@ -70,7 +71,7 @@ __all__ = [
 ]
 
 _TOP_KEYS = ("state_dir", "store", "sources", "sinks", "limits", "service", "secrets", "classes", "catalog",
-             "reports")
+             "reports", "tuning")
 
 
 def freeze(value: Any) -> Any:
@@ -219,6 +220,7 @@ class Config:
     catalog_raw: Mapping[str, Any] | None
     _classes: Any = field(default=None, repr=False, compare=False)
     reports_raw: Mapping[str, Any] | None = None
+    tuning_raw: Mapping[str, Any] | None = None
 
     def classes(self):
         """The counterpart classes: this file's ``classes`` section, or the packaged defaults."""
@@ -391,11 +393,19 @@ def config_from_mapping(raw: Any, *, base_dir=".", path: Path | None = None) -> 
     reports_raw = raw.get("reports")
     if reports_raw is not None and not isinstance(reports_raw, Mapping):
         raise ConfigError("reports", f"must be a mapping, got {type(reports_raw).__name__}")
+    tuning_raw = raw.get("tuning")
+    if tuning_raw is not None:
+        # Validated now (errors name the key path) against the classes it tunes; kept as given.
+        from matcher.coincidence import default_classes
+        from matcher.tune.settings import parse_tuning
+
+        parse_tuning(tuning_raw, parsed_classes if parsed_classes is not None else default_classes())
 
     return Config(path, state_dir, store_path, MappingProxyType(sources), MappingProxyType(sinks), limits, service,
                   MappingProxyType(secrets), None if classes_raw is None else freeze(classes_raw),
                   None if catalog_raw is None else freeze(catalog_raw), parsed_classes,
-                  None if reports_raw is None else freeze(reports_raw))
+                  None if reports_raw is None else freeze(reports_raw),
+                  None if tuning_raw is None else freeze(tuning_raw))
 
 
 def load_config(path=None) -> Config:

@@ -174,3 +174,15 @@ def test_secret_references_from_options(tmp_path):
     assert ctx.secret("pw", "sources.k.password").env == "X"
     with pytest.raises(ConfigError, match=r"sources\.k\.password: refers to secret 'pwd'"):
         ctx.secret("pwd", "sources.k.password")
+
+
+def test_tuning_section_is_accepted_and_validated(tmp_path):
+    # One configuration file serves the service and `matcher tune` (a past gap: the service
+    # rejected the tuning: section).
+    from matcher.config import config_from_mapping
+    from matcher.errors import ConfigError
+
+    cfg = config_from_mapping({"tuning": {}}, base_dir=tmp_path)
+    assert cfg.tuning_raw == {}
+    with pytest.raises(ConfigError, match="tuning"):
+        config_from_mapping({"tuning": 5}, base_dir=tmp_path)

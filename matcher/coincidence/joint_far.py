@@ -33,5 +33,6 @@ def joint_far(far_gw, all_sky_rate_per_s, window_s, sky_per_sr) -> np.ndarray:
     """
     i_omega = 4.0 * math.pi * np.asarray(sky_per_sr, dtype=np.float64)
     num = np.asarray(far_gw, float) * np.asarray(all_sky_rate_per_s, float) * np.asarray(window_s, float)
-    with np.errstate(divide="ignore"):
+    # A vanishing (subnormal) overlap gives an infinite joint FAR: that is the answer, not an error.
+    with np.errstate(divide="ignore", over="ignore"):
         return np.where(i_omega > 0, num / np.where(i_omega > 0, i_omega, 1.0), np.inf)
