@@ -241,12 +241,19 @@ def _plot(skymap, cands, hosts, event_id, alert, dpi: float, title: str) -> Repo
                              max_hosts=max(len(gal), 1), max_labels=_PLOT_LABELS, dpi=dpi)
     png = figure_bytes(plot.figure, "png")
     areas = ", ".join(f"{lv:.0%} area {a:,.1f} deg²" for lv, a in plot.area_deg2.items())
+    note = plot.zoom_note[:1].upper() + plot.zoom_note[1:]
+    note = note if note.endswith(".") else note + "."
     alt = (f"Sky map of {event_id} revision {alert.revision}: {areas}; {len(marks)} candidate"
            f"{'s' if len(marks) != 1 else ''} and {len(plot.hosts)} host galax{'ies' if len(plot.hosts) != 1 else 'y'}"
-           f" marked. {plot.zoom_note}.")
-    caption = ("Probability per deg² (darker is more probable), 50% region solid, 90% dashed. Stars: candidates "
-               "labelled rank · P_assoc; diamonds: host galaxies g1…; dotted circles: 90% position errors. "
-               + plot.zoom_note + ".")
+           f" marked. {note}")
+    keys = ["Probability per deg² (darker is more probable), 50% region solid, 90% dashed."]
+    if marks:
+        keys.append(f"Stars: candidates, the first {min(len(marks), _PLOT_LABELS)} labelled rank · P_assoc.")
+        if any(c.err_deg for c in marks):
+            keys.append("Dotted circles: 90% position errors.")
+    if plot.hosts:
+        keys.append("Diamonds: host galaxies, g1 the most probable.")
+    caption = " ".join(keys + [note])
     return ReportFigure(title, png, alt, caption)
 
 
