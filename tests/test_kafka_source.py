@@ -305,3 +305,21 @@ def test_missing_topic_and_missing_broker_are_clear_errors(kafka_broker):
                                                   r"running at 127\.0\.0\.1:9\?"):
         src.poll(10, 0.1)
     src.close()
+
+
+def test_commit_interval_batches_commits_and_close_commits_the_rest(kafka_broker):
+    bs = kafka_broker.bootstrap
+    reports, group = unique_topic("reports"), unique_topic("group")
+    kafka_broker.create_topics({reports: 1})
+    produce(bs, reports, [b"r%d" % i for i in range(10)], partition=0)
+    src = KafkaSource("k", source_options(bs, reports=[reports], group=group, commit_interval_ms=60000))
+    try:
+        items = drain(src, 10, commit=False)
+        src.commit(settle(items[:5]))  # the first commit goes at once
+        assert committed(bs, group, reports, [0])[0].offset == 5
+        src.commit(settle(items[5:]))  # within the interval: held back
+        assert committed(bs, group, reports, [0])[0].offset == 5
+        assert src.info()["pending_commits"] == 1
+    finally:
+        src.close()  # a clean stop commits what the store already holds
+    assert committed(bs, group, reports, [0])[0].offset == 10

@@ -126,6 +126,10 @@ class KafkaSourceOptions:
         Group membership timing (a dead instance's partitions move after ``session_timeout_ms``).
     commit_timeout_ms : int, ms
         How long one offset commit may wait; a failed commit is retried, never lost.
+    commit_interval_ms : int, ms
+        0 (default): commit after every batch. Otherwise at most this often (each commit
+        is a round trip to the group coordinator); what the store holds but Kafka does
+        not yet is read again after a crash or rebalance, and recognised by the store.
     stop_at_end : bool
         Finish once everything that was on the topics at start is processed (alerts by
         this instance; reports committed by the group): for replays, tests and benchmarks.
@@ -146,6 +150,7 @@ class KafkaSourceOptions:
     heartbeat_interval_ms: int = 3000
     max_poll_interval_ms: int = 300000
     commit_timeout_ms: int = 10000
+    commit_interval_ms: int = 0
     stop_at_end: bool = False
     received_at: str = "record"
 
@@ -227,6 +232,7 @@ class KafkaSource:
         self._inflight: dict[tuple, _Partition] = {}
         self._pending: dict[Any, Any] = {}  # TopicPartition -> OffsetAndMetadata, durable but not committed
         self._last_commit_try = 0.0
+        self._commit_failed = False
         self._last_partition_check = 0.0
         self._end_at_start: dict | None = None
         self._last_end_check = 0.0
@@ -544,7 +550,9 @@ class KafkaSource:
                 st.done = last[0] + 1
             else:
                 self._pending[tp] = OffsetAndMetadata(last[0] + 1, f"matcher:{self.name}", last[1])
-        self._commit_pending()
+        interval = self.options.commit_interval_ms / 1000.0
+        if not interval or time.monotonic() - self._last_commit_try >= interval:
+            self._commit_pending()
 
     def _commit_pending(self) -> None:
         if not self._pending or self._group is None:
@@ -572,8 +580,10 @@ class KafkaSource:
             return
         except (kerr.KafkaError, OSError) as exc:
             self.stats["commit_retries"] += 1
+            self._commit_failed = True
             LOG.warning("kafka source %s: offset commit failed (%s); will retry", self.name, type(exc).__name__)
             return
+        self._commit_failed = False
         self.stats["commits"] += 1
         for tp, om in offsets.items():
             if self._pending.get(tp) is om:
@@ -583,7 +593,9 @@ class KafkaSource:
                 st.done = om.offset if st.done is None else max(st.done, om.offset)
 
     def _retry_commit(self) -> None:
-        if self._pending and time.monotonic() - self._last_commit_try >= _COMMIT_RETRY_S:
+        """Commit what is pending: after a failure (not sooner than a second later), or once the interval passed."""
+        wait = max(self.options.commit_interval_ms / 1000.0, _COMMIT_RETRY_S if self._commit_failed else 0.0)
+        if self._pending and time.monotonic() - self._last_commit_try >= wait:
             self._commit_pending()
 
     def _check_alert_partitions(self) -> None:
@@ -758,7 +770,8 @@ def _topics(raw: Mapping, keypath: str) -> tuple[tuple[str, ...], tuple[str, ...
 def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> KafkaSourceOptions:
     check_keys(raw, ("connection", "topics", "group_id", "group_instance_id", "fetch_max_bytes",
                      "max_partition_fetch_bytes", "fetch_max_wait_ms", "session_timeout_ms", "heartbeat_interval_ms",
-                     "max_poll_interval_ms", "commit_timeout_ms", "stop_at_end", "received_at"), keypath,
+                     "max_poll_interval_ms", "commit_timeout_ms", "commit_interval_ms", "stop_at_end", "received_at"),
+               keypath,
                required=("connection", "topics"))
     conn = parse_connection(raw.get("connection"), sub(keypath, "connection"), ctx)
     alerts, reports = _topics(raw, keypath)
@@ -773,7 +786,7 @@ def _parse(raw: Mapping[str, Any], keypath: str, ctx: ParseContext) -> KafkaSour
     opts = {k: get_int(raw, k, keypath, d[k].default, lo=lo) for k, lo in (
         ("fetch_max_bytes", 1024), ("max_partition_fetch_bytes", 1024), ("fetch_max_wait_ms", 0),
         ("session_timeout_ms", 1000), ("heartbeat_interval_ms", 100), ("max_poll_interval_ms", 1000),
-        ("commit_timeout_ms", 100))}
+        ("commit_timeout_ms", 100), ("commit_interval_ms", 0))}
     if opts["heartbeat_interval_ms"] >= opts["session_timeout_ms"]:
         raise ConfigError(sub(keypath, "heartbeat_interval_ms"), f"must be below session_timeout_ms "
                                                                  f"({opts['session_timeout_ms']}); a third of it is usual")
