@@ -56,6 +56,8 @@ __all__ = [
     "client_config",
     "scrub",
     "transport_errors",
+    "ClientProblems",
+    "explain",
     "describe_connection",
     "wait_reachable",
     "close_failed_sockets",
@@ -360,6 +362,57 @@ def scrub(text: str, conn: Connection) -> str:
     return text
 
 
+_REFUSALS = ("AuthenticationFailed", "AuthorizationFailed", "Authorization failed", "certificate verify failed",
+             "CERTIFICATE_VERIFY_FAILED", "SSLError", "SSLCertVerificationError", "Handshake failed")
+
+
+class ClientProblems(logging.Handler):
+    """Keeps the last refusal kafka-python logged (authentication, TLS) while a client is being made.
+
+    kafka-python retries a refused bootstrap until its timeout and then raises only
+    "Unable to bootstrap"; the reason (a wrong password, an untrusted certificate) is
+    in its log. This handler, on the ``kafka`` logger for the duration, keeps it for
+    the error message. The texts are kafka-python's own (no secrets; scrubbed anyway).
+    """
+
+    def __init__(self):
+        super().__init__(logging.WARNING)
+        self.last: str | None = None
+
+    def emit(self, record: logging.LogRecord) -> None:
+        try:
+            msg = record.getMessage()
+        except Exception:  # a malformed record from the library must not break our error path
+            return
+        if any(word in msg for word in _REFUSALS):
+            m = re.search(r"\[Error \d+\].*", msg)
+            text = re.sub(r"\s*\(backoff [^)]*\)\s*$", "", m.group(0) if m else msg)
+            self.last = re.sub(r"(\w+Error): \1: ", r"\1: ", text).strip()
+
+    @classmethod
+    @contextlib.contextmanager
+    def watching(cls) -> Iterator[ClientProblems]:
+        handler = cls()
+        logger = logging.getLogger("kafka")
+        logger.addHandler(handler)
+        try:
+            yield handler
+        finally:
+            logger.removeHandler(handler)
+
+
+def explain(exc: BaseException, conn: Connection, problems: ClientProblems | None = None) -> str:
+    """A one-line text for a kafka-python error: its type and text, why, and a hint; secrets scrubbed."""
+    from kafka import errors as kerr
+
+    detail = re.sub(r"^(\w+): \1: ", r"\1: ", f"{type(exc).__name__}: {exc}")  # kafka errors repeat their name
+    if problems is not None and problems.last:
+        detail += f"; the broker refused the connection: {problems.last}"
+    elif isinstance(exc, (kerr.KafkaConnectionError, kerr.KafkaTimeoutError)):
+        detail += f" (is a broker running at {conn.servers_text}?)"
+    return scrub(detail, conn)
+
+
 @contextlib.contextmanager
 def transport_errors(what: str, conn: Connection) -> Iterator[None]:
     """Turn kafka-python's errors inside the block into :class:`KafkaTransportError`.
@@ -373,14 +426,11 @@ def transport_errors(what: str, conn: Connection) -> Iterator[None]:
     """
     from kafka import errors as kerr
 
-    try:
-        yield
-    except (kerr.KafkaError, OSError) as exc:
-        detail = scrub(f"{type(exc).__name__}: {exc}", conn)
-        hint = ""
-        if isinstance(exc, (kerr.KafkaConnectionError, kerr.KafkaTimeoutError)):
-            hint = f" (is a broker running at {conn.servers_text}?)"
-        raise KafkaTransportError(f"{what}: {detail}{hint}") from None
+    with ClientProblems.watching() as problems:
+        try:
+            yield
+        except (kerr.KafkaError, OSError) as exc:
+            raise KafkaTransportError(f"{what}: {explain(exc, conn, problems)}") from None
 
 
 def describe_connection(conn: Connection) -> dict:

@@ -35,8 +35,9 @@ from matcher.streams.kafka_common import (
     describe_connection,
     parse_connection,
     parse_topic,
+    ClientProblems,
     KafkaTransportError,
-    scrub,
+    explain,
     wait_reachable,
 )
 from matcher.streams.sinks.base import SinkError, SinkKind, parse_kinds, register_sink_kind
@@ -113,9 +114,8 @@ class KafkaSink:
     def _what(self, doing: str) -> str:
         return f"sink {self.name} (kafka topic {self.options.topic} at {self.options.connection.servers_text}): {doing}"
 
-    def _error(self, doing: str, exc: BaseException) -> SinkError:
-        detail = scrub(f"{type(exc).__name__}: {exc}", self.options.connection)
-        return SinkError(self._what(f"{doing}: {detail}"))
+    def _error(self, doing: str, exc: BaseException, problems: ClientProblems | None = None) -> SinkError:
+        return SinkError(self._what(f"{doing}: {explain(exc, self.options.connection, problems)}"))
 
     def _make_producer(self) -> None:
         from kafka import KafkaProducer
@@ -132,17 +132,18 @@ class KafkaSink:
             wait_reachable(o.connection, self._what("connecting"))
         except KafkaTransportError as exc:
             raise SinkError(str(exc)) from None
-        try:
-            producer = KafkaProducer(**kw)
-        except (kerr.KafkaError, OSError) as exc:
-            raise self._error("cannot connect", exc) from None
-        except AssertionError as exc:  # kafka-python checks a compression library is importable this way
-            raise self._error("cannot make the producer", exc) from None
-        try:
-            parts = producer.partitions_for(o.topic)
-        except (kerr.KafkaError, OSError) as exc:
-            producer.close(timeout=2)
-            raise self._error("the topic does not exist or cannot be described", exc) from None
+        with ClientProblems.watching() as problems:
+            try:
+                producer = KafkaProducer(**kw)
+            except (kerr.KafkaError, OSError) as exc:
+                raise self._error("cannot connect", exc, problems) from None
+            except AssertionError as exc:  # kafka-python checks a compression library is importable this way
+                raise self._error("cannot make the producer", exc) from None
+            try:
+                parts = producer.partitions_for(o.topic)
+            except (kerr.KafkaError, OSError) as exc:
+                producer.close(timeout=2)
+                raise self._error("the topic does not exist or cannot be described", exc, problems) from None
         if not parts:
             producer.close(timeout=2)
             raise SinkError(self._what("the topic has no partitions (does it exist?)"))
