@@ -558,33 +558,8 @@ class Transaction:
         ResultRow or None
             The new row (with its outbox ``seq``), or ``None`` when nothing changed.
         """
-        if status not in RESULT_STATUSES:
-            raise ValueError(f"status must be one of {', '.join(RESULT_STATUSES)}, got {status!r}")
-        ev = self._event_state(event_id)
-        if ev is None:
-            raise ValueError(f"result for unknown event {event_id!r}: store the alert first")
-        if revision > ev[0]:
-            raise ValueError(f"result for {event_id} revision {revision}, newer than its stored revision {ev[0]}")
-        if ev[1] == "withdrawn":
-            status = "withdrawn"
-        elif revision < ev[0] and status == "current":
-            status = "superseded"
-        key = result_key(event_id, revision, transient_id)
-        rec = dict(json.loads(_dumps(record)))
-        rec.update(key=key, event_id=event_id, revision=int(revision), transient_id=transient_id, status=status)
-        text = _dumps(rec)
-        old = self._db.execute("SELECT record FROM results WHERE key = ?", (key,)).fetchone()
-        if old is not None and old[0] == text:
-            return None
-        seq = self.enqueue("match", key, text)
-        self._db.execute(
-            "INSERT INTO results VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?) ON CONFLICT(key) DO UPDATE SET"
-            " status=excluded.status, class=excluded.class, p_assoc=excluded.p_assoc, fap=excluded.fap,"
-            " odds=excluded.odds, rank=excluded.rank, record=excluded.record, seq=excluded.seq,"
-            " updated_at=excluded.updated_at",
-            (key, event_id, int(revision), transient_id, status, rec.get("class"), rec.get("p_assoc"),
-             rec.get("fap"), rec.get("odds"), rec.get("rank"), text, seq, self._now))
-        return ResultRow(key, event_id, int(revision), transient_id, status, rec, seq)
+        rows = self.put_results([(event_id, revision, transient_id, record, status)])
+        return rows[0] if rows else None
 
     def put_results(self, items) -> list[ResultRow]:
         """Many :meth:`put_result` calls in one go (same rules, same rows, same outbox order).
