@@ -308,7 +308,7 @@ class Service:
         source.commit(decoded)  # 4. commit the source, only now
         t4 = time.perf_counter()
         sec["commit"] += t4 - t3
-        self.publish()  # 5. publish the outbox
+        self.publish(tolerant=True)  # 5. publish the outbox (a sink that is away retries next batch)
         t5 = time.perf_counter()
         sec["publish"] += t5 - t4
         self._write_reports(stats)  # 6. reports of events that changed
@@ -347,9 +347,26 @@ class Service:
                 self.on_batch(self, ApplyStats())
         return self.stats
 
-    def publish(self) -> int:
-        """Copy pending outbox rows to every sink (each row durable before its cursor moves)."""
-        return sum(p.publish() for p in self.publishers)
+    def publish(self, *, tolerant: bool = False) -> int:
+        """Copy pending outbox rows to every sink (each row durable before its cursor moves).
+
+        With ``tolerant`` a sink that fails (a broker away longer than its delivery timeout,
+        a full disk) gets a warning and is tried again at the next call; its rows stay in the
+        outbox, so nothing is lost. At start-up the service is strict: a sink that cannot take
+        its output then is a configuration problem.
+        """
+        from matcher.streams.sinks import SinkError
+
+        sent = 0
+        for p in self.publishers:
+            try:
+                sent += p.publish()
+            except (SinkError, OSError) as exc:
+                if not tolerant:
+                    raise
+                warnings.warn(f"{exc}; its outbox rows stay queued and are sent again after the next batch",
+                              MatcherWarning, stacklevel=2)
+        return sent
 
     def _write_reports(self, stats: ApplyStats) -> None:
         if not self.writers:
@@ -382,7 +399,7 @@ class Service:
     def close(self) -> None:
         """Publish once more, then close sinks, sources, report writers and the store."""
         try:
-            self.publish()
+            self.publish(tolerant=True)
         finally:
             self._close_parts()
 

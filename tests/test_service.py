@@ -162,3 +162,55 @@ def test_report_writers_run_after_each_changed_revision(stream, tmp_path):
     bad = config_from_mapping({"state_dir": "st2", "reports": {"h": {"kind": "no-such-writer"}}}, base_dir=tmp_path)
     with pytest.raises(ConfigError, match="reports.h.kind: unknown report writer 'no-such-writer'"):
         replay_archive(stream, out_dir=tmp_path / "o2", config=bad, progress_mode="off")
+
+
+class _AwaySink:
+    """A sink whose target is away for its first ``fail`` flushes (a broker past its delivery timeout)."""
+
+    kind = "test-away"
+    kinds = ("match",)
+
+    def __init__(self, name, fail):
+        self.name, self.fail, self.rows, self._pending = name, fail, [], []
+
+    def open(self, sent_seq):
+        return sent_seq
+
+    def write(self, rows):
+        self._pending = list(rows)
+
+    def flush(self):
+        from matcher.streams.sinks import SinkError
+
+        if self.fail > 0:
+            self.fail -= 1
+            self._pending = []
+            raise SinkError(f"sink {self.name}: target away")
+        self.rows += self._pending
+        self._pending = []
+
+    def close(self):
+        pass
+
+
+def test_a_sink_that_is_away_is_retried_not_fatal(stream, golden, tmp_path):
+    # The loop warns and goes on; the rows wait in the outbox and every one arrives later.
+    from matcher.errors import MatcherWarning
+    from matcher.replay import default_config
+    from matcher.service import Service
+    from matcher.streams.sources import ArchiveSource
+
+    import dataclasses
+
+    sink = _AwaySink("away", fail=2)
+    source = ArchiveSource("replay", stream)
+    cfg = default_config()
+    cfg = dataclasses.replace(cfg, service=dataclasses.replace(cfg.service, batch_size=40))
+    with pytest.warns(MatcherWarning, match="target away; its outbox rows stay queued"):
+        with Service(cfg, sources=[source], sinks=[], extra_sinks=[sink],
+                     store_path=tmp_path / "s.sqlite") as svc:
+            svc.run(until_finished=True)
+    _, reference = golden
+    got = {json.loads(r.payload)["key"] for r in sink.rows}
+    assert got == set(reference)
+    assert len(sink.rows) == len({r.seq for r in sink.rows})  # each outbox row once

@@ -3,7 +3,8 @@
 Three parts, top to bottom: a status line (uptime, messages per second over the last
 10 s, totals of messages, reports, alerts, results written, quarantined input); the
 active events (id, revision, state, merger time, 50 %/90 % area, distance, candidates);
-and the best candidates of each active event (exact P_assoc, FAP, odds, host galaxy).
+and the best candidates of each active event (exact P_assoc, FAP, odds, host galaxy);
+and, for sources that know it (Kafka), the consumer lag per partition.
 It reads the service's in-memory state only (no store queries while drawing), so it
 can redraw often without slowing the loop.
 """
@@ -61,7 +62,20 @@ def render(service, *, best: int = 3, quarantined_before: int = 0):
                           format_p(c["fap"]), f"{c['odds']:.3g}", "-" if c["host"] is None else str(c["host"]))
     if not service.matcher.events:
         events.add_row("(none)", "", "", "", "", "", "", "")
-    return Panel(Group(head, events, cands), title="matcher", border_style="blue")
+    parts = [head, events, cands]
+    lag_rows = [(s.name, row) for s in service.sources if callable(getattr(s, "lag", None)) for row in s.lag()]
+    if lag_rows:
+        # Sources that know their consumer lag (Kafka) report it per partition, without a network call.
+        lag = Table(title="consumer lag", title_justify="left", expand=True, header_style="bold")
+        for name, kw in (("source", {}), ("topic", {}), ("partition", {"justify": "right"}), ("role", {}),
+                         ("end", {"justify": "right"}), ("done", {"justify": "right"}),
+                         ("lag", {"justify": "right"}), ("in flight", {"justify": "right"})):
+            lag.add_column(name, **kw)
+        for src, r in lag_rows:
+            lag.add_row(src, r["topic"], str(r["partition"]), r["role"],
+                        *("-" if r[k] is None else f"{r[k]:,}" for k in ("end", "done", "lag", "in_flight")))
+        parts.append(lag)
+    return Panel(Group(*parts), title="matcher", border_style="blue")
 
 
 class Dashboard:
