@@ -362,7 +362,7 @@ def config_from_mapping(raw: Any, *, base_dir=".", path: Path | None = None) -> 
             raise ConfigError(kp, f"must be a mapping with kind and the kind's options, got {type(spec).__name__}")
         kind_name = get_str(spec, "kind", kp)
         if kind_name is None:
-            raise ConfigError(f"{kp}.kind", "is required (inbox or archive)")
+            raise ConfigError(f"{kp}.kind", "is required (inbox, archive or kafka)")
         kind = source_kind(kind_name, f"{kp}.kind")
         codec = _codec(spec.get("codec"), f"{kp}.codec", limits.message_max_bytes)
         rest = {k: v for k, v in spec.items() if k not in ("kind", "codec")}
