@@ -40,11 +40,10 @@ from pathlib import Path
 from types import MappingProxyType
 from typing import Any, Mapping
 
-import yaml
-
 from matcher.errors import ConfigError
 from matcher.keycheck import (
     ParseContext,
+    read_yaml_file,
     check_keys,
     get_int,
     get_number,
@@ -424,17 +423,5 @@ def load_config(path=None) -> Config:
     if path is None:
         return config_from_mapping(None, base_dir=Path.cwd())
     p = Path(path).expanduser()
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(str(p), f"cannot read: {exc.strerror or exc}") from None
-    except UnicodeDecodeError:
-        raise ConfigError(str(p), "is not UTF-8 text") from None
-    try:
-        raw = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f" at line {mark.line + 1} column {mark.column + 1}" if mark is not None else ""
-        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
-        raise ConfigError(str(p), f"is not valid YAML{where}: {problem}") from None
+    raw = read_yaml_file(p)
     return config_from_mapping(raw, base_dir=p.resolve().parent, path=p.resolve())

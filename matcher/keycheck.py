@@ -13,7 +13,7 @@ from typing import Any, Iterable, Mapping
 
 from matcher.errors import ConfigError
 
-__all__ = ["ParseContext", "check_keys", "get_str", "get_number", "get_int", "get_bool", "get_path", "get_str_list", "sub"]
+__all__ = ["read_yaml_file", "ParseContext", "check_keys", "get_str", "get_number", "get_int", "get_bool", "get_path", "get_str_list", "sub"]
 
 
 @dataclass(frozen=True)
@@ -127,3 +127,29 @@ def get_str_list(raw: Mapping, key: str, keypath: str, default=()) -> tuple[str,
         if not isinstance(s, str) or not s:
             raise ConfigError(f"{sub(keypath, key)}[{i}]", f"must be a non-empty string, got {s!r}")
     return tuple(v)
+
+
+def read_yaml_file(path) -> Any:
+    """The document of a YAML file (``yaml.safe_load``); errors name the file, and the line for bad YAML.
+
+    Raises
+    ------
+    ConfigError
+        The file cannot be read, is not UTF-8, or is not valid YAML.
+    """
+    import yaml
+
+    p = Path(path).expanduser()
+    try:
+        text = p.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigError(str(p), f"cannot read: {exc.strerror or exc}") from None
+    except UnicodeDecodeError:
+        raise ConfigError(str(p), "is not UTF-8 text") from None
+    try:
+        return yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" at line {mark.line + 1} column {mark.column + 1}" if mark is not None else ""
+        problem = getattr(exc, "problem", None) or str(exc).splitlines()[0]
+        raise ConfigError(str(p), f"is not valid YAML{where}: {problem}") from None

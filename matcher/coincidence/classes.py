@@ -205,17 +205,10 @@ def load_classes_file(path) -> dict[str, CounterpartClass]:
     ConfigError
         When the file cannot be read or parsed, lacks ``classes:``, or a class is invalid.
     """
-    import yaml
+    from matcher.keycheck import read_yaml_file
 
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(str(p), f"cannot read configuration file: {exc.strerror or exc}") from None
-    try:
-        doc = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise ConfigError(str(p), f"is not valid YAML: {exc}") from None
+    doc = read_yaml_file(p)
     if not isinstance(doc, Mapping) or "classes" not in doc:
         raise ConfigError(f"{p}: classes", "is missing (the file needs a top-level 'classes:' mapping)")
     return parse_classes(doc["classes"], path=f"{p}: classes")

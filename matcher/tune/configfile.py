@@ -29,17 +29,10 @@ def load_tuning_config(path=None) -> tuple[dict[str, CounterpartClass], TuningSe
     if path is None:
         classes = default_classes()
         return classes, parse_tuning(None, classes)
-    import yaml
+    from matcher.keycheck import read_yaml_file
 
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError(str(p), f"cannot read configuration file: {exc.strerror or exc}") from None
-    try:
-        doc = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise ConfigError(str(p), f"is not valid YAML: {exc}") from None
+    doc = read_yaml_file(p)
     if doc is None:
         doc = {}
     if not isinstance(doc, Mapping):
