@@ -25,6 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
+from matcher.bench._archive import json_loads_seconds, write_optical_reports
 from matcher.bench._timing import print_row
 
 __all__ = ["register", "run", "write_archive"]
@@ -59,24 +60,12 @@ def write_archive(folder: Path, reports: int, events: int, seed: int) -> Path:
                                  "revision": 1, "state": "issued", "merger_time": gps_to_iso(t0 + 10800.0 * i * 20 / events),
                                  "far_per_year": 0.1, "p_astro": 0.95, "source_probs": {"bns": 0.9, "terrestrial": 0.05},
                                  "localization": f"map{i:02d}.fits"}) + "\n")
-        ra = rng.uniform(0, 360, reports)
-        dec = np.degrees(np.arcsin(rng.uniform(-1, 1, reports)))
-        t = t0 + np.sort(rng.uniform(0, 86400.0 * 3, reports))
-        for j in range(reports):
-            fh.write(json.dumps({
-                "schema": "matcher/1", "type": "transient", "transient_id": f"BT{j:07d}", "class": "optical",
-                "ra_deg": round(float(ra[j]), 6), "dec_deg": round(float(dec[j]), 6), "pos_err_deg": 0.0003,
-                "time": gps_to_iso(float(t[j])), "last_nondetection": gps_to_iso(float(t[j]) - 172800.0),
-                "mag": round(float(rng.uniform(18, 23)), 2)}) + "\n")
+        write_optical_reports(fh, rng, reports, t0)
     return path
 
 
 def _baseline(path: Path) -> float:
-    t = time.perf_counter()
-    with open(path, "rb") as fh:
-        for raw in fh:
-            json.loads(raw)
-    return time.perf_counter() - t
+    return json_loads_seconds(path)
 
 
 def _fresh(path: Path) -> None:
