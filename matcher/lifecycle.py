@@ -616,27 +616,44 @@ class Matcher:
         table = score_reports(ev.alert, ev.skymap, batch, self.classes, report_maps=maps,
                               external_distance_mpc=ext_d, external_distance_err_mpc=ext_s)
         stats.scored += idx.size
-        for j in range(idx.size):
-            if not table.in_window[j] or table.odds[j] <= 0:
-                continue
-            if not point and table.sky_per_sr[j] < ev.density_cut:
-                continue
-            rec = table.record(j)
-            rec.pop("p_assoc")
+        ok = table.in_window & (table.odds > 0)
+        if not point:
+            ok &= table.sky_per_sr >= ev.density_cut
+        keep = np.flatnonzero(ok)
+        if not keep.size:
+            return
+        # Plain Python columns of the kept rows (one tolist per column instead of a numpy scalar per value).
+        c = {name: getattr(table, name)[keep].tolist() for name in (
+            "odds", "fap", "searched_area_deg2", "credible_level", "dt_s", "sky_per_sr", "time_per_s",
+            "distance_factor", "prior", "joint_far_per_year", "background_expected", "distance_mpc",
+            "distance_err_mpc", "distance_source")}
+        for n, j in enumerate(keep.tolist()):
             r = reports[j]
-            rec.update(
-                candidate=True,
-                time=r.time_iso,
-                background_expected=_finite(table.background_expected[j]),
-                distance={"mpc": _finite(table.distance_mpc[j]), "err_mpc": _finite(table.distance_err_mpc[j]),
-                          "source": str(table.distance_source[j])},
-            )
+            far = c["joint_far_per_year"][n]
+            source = str(c["distance_source"][n])
+            rec = {
+                "transient_id": r.transient_id,
+                "class": r.klass,
+                "odds": c["odds"][n],
+                "fap": c["fap"][n],
+                "searched_area_deg2": c["searched_area_deg2"][n],
+                "credible_level": c["credible_level"][n],
+                "dt_s": c["dt_s"][n],
+                "terms": {"sky_per_sr": c["sky_per_sr"][n], "time_per_s": c["time_per_s"][n],
+                          "distance_factor": c["distance_factor"][n], "prior": c["prior"][n]},
+                "joint_far_per_year": None if far != far else far,
+                "candidate": True,
+                "time": r.time_iso,
+                "background_expected": _finite(c["background_expected"][n]),
+                "distance": {"mpc": _finite(c["distance_mpc"][n]), "err_mpc": _finite(c["distance_err_mpc"][n]),
+                             "source": source},
+            }
             h = hosts[j]
             rec["host"] = None if h is None else _host_dict(h.best)
-            if str(table.distance_source[j]) == "external" and h is not None and h.best_by_position is not None:
+            if source == "external" and h is not None and h.best_by_position is not None:
                 gid = h.best_by_position.galaxy_id
                 rec["distance"]["host_galaxy_id"] = gid.item() if hasattr(gid, "item") else gid
-            new[r.transient_id] = (rec, float(table.odds[j]), float(table.fap[j]), r.klass)
+            new[r.transient_id] = (rec, rec["odds"], rec["fap"], r.klass)
 
     def _stored_static(self, store, ev: EventState, tids) -> dict[str, dict]:
         want = set(tids)
