@@ -489,7 +489,9 @@ class Matcher:
             reports = [s.report for s in stored_tr]
             maps = [self._map_of_stored(store, s) for s in stored_tr]
             cols = _Columns(reports, maps, self.classes, self.settings)
-            self._score_event(tx, store, ev, cols, np.full(len(cols), -math.inf), set(), stats)
+            out: list = []
+            self._score_event(store, ev, cols, np.full(len(cols), -math.inf), set(), stats, out)
+            stats.written += len(tx.put_results(out))
         if ev.expires_at <= self.clock:
             self._expire(tx, ev)
         else:
@@ -539,8 +541,10 @@ class Matcher:
         ahead = np.array([unix_to_gps(t) + CLOCK_LEAD_S for t in received])
         tick = np.minimum(cols.time, ahead)
         before = np.concatenate([[self.clock], np.maximum.accumulate(np.maximum(tick, self.clock))[:-1]])
+        out: list = []  # every event's changed records, written in one go (in this order)
         for eid in sorted(self.events):
-            self._score_event(tx, store, self.events[eid], cols, before, updated, stats)
+            self._score_event(store, self.events[eid], cols, before, updated, stats, out)
+        stats.written += len(tx.put_results(out))
         self.clock = max(self.clock, float(np.max(tick)))
         for eid in sorted(self.events):
             ev = self.events[eid]
@@ -548,9 +552,10 @@ class Matcher:
                 self._expire(tx, ev)
                 del self.events[eid]
 
-    def _score_event(self, tx, store, ev: EventState, cols: _Columns, clock_before: np.ndarray,
-                     updated: set, stats: ApplyStats) -> None:
-        """Score a segment's reports against one event; update its candidates and publish changes."""
+    def _score_event(self, store, ev: EventState, cols: _Columns, clock_before: np.ndarray,
+                     updated: set, stats: ApplyStats, out: list) -> None:
+        """Score a segment's reports against one event; update its candidates; append the records to
+        write to ``out`` as ``(event_id, revision, transient_id, record)`` (the caller writes them)."""
         full = False
         for tid in updated:  # a changed report first leaves wherever it was
             g = ev.find(tid)
@@ -584,12 +589,11 @@ class Matcher:
             row = self._stored_static(store, ev, [tid]).get(tid)
             if row is not None:
                 row.update(candidate=False, odds=0.0, fap=1.0, p_assoc=0.0, rank=None)
-                if tx.put_result(ev.event_id, ev.revision, tid, row) is not None:
-                    stats.written += 1
+                out.append((ev.event_id, ev.revision, tid, row))
                 ev.published.pop(tid, None)
                 ev.static.pop(tid, None)
         if wrote or full:
-            self._publish(tx, store, ev, wrote, full, stats)
+            self._publish(store, ev, wrote, full, out)
 
     def _score_rows(self, ev: EventState, cols: _Columns, idx: np.ndarray, new: dict, stats: ApplyStats,
                     *, point: bool) -> None:
@@ -663,8 +667,8 @@ class Matcher:
                 out[r.transient_id] = _static_of(r.record)
         return out
 
-    def _publish(self, tx, store, ev: EventState, new: set, full: bool, stats: ApplyStats) -> None:
-        """Write the records whose published ``p_assoc``/``rank`` changed (and every new one)."""
+    def _publish(self, store, ev: EventState, new: set, full: bool, out: list) -> None:
+        """Append to ``out`` the records whose published ``p_assoc``/``rank`` changed (and every new one)."""
         tops = {t[2] for g in ev.groups.values() for t in g.top}
         if full:
             relevant = {tid for g in ev.groups.values() for tid in g.odds}
@@ -689,20 +693,17 @@ class Matcher:
         order.sort()
         k = self.settings.top_ranks
         dec = self.settings.p_assoc_decimals
-        items = []
         for rank, (negp, _, _, tid) in enumerate(order, start=1):
             value = (round(-negp, dec), rank if rank <= k else None)
             if tid not in new and value == ev.published.get(tid, (0.0, None)):
                 continue
             rec = dict(ev.static[tid])
             rec["p_assoc"], rec["rank"] = value
-            items.append((ev.event_id, ev.revision, tid, rec))
+            out.append((ev.event_id, ev.revision, tid, rec))
             if value == (0.0, None):
                 ev.published.pop(tid, None)
             else:
                 ev.published[tid] = value
-        # One bulk write (same rows and outbox order as one put_result per record, far fewer round trips).
-        stats.written += len(tx.put_results(items))
         for tid in list(ev.static):
             if tid not in ev.published and tid not in tops:
                 del ev.static[tid]
