@@ -677,26 +677,28 @@ class Matcher:
         missing = [t for t in relevant if t not in ev.static]
         if missing:
             ev.static.update(self._stored_static(store, ev, missing))
-        klass_of = {}
-        for g in ev.groups.values():
-            for tid in relevant:
-                if tid in g:
-                    klass_of[tid] = g
-        order = []
-        for tid in relevant:
-            g = klass_of.get(tid)
-            if g is None:
-                continue
-            odds = g.odds[tid]
-            p = odds / g.denominator
-            order.append((-p, -odds, g.fap[tid], tid))
-        order.sort()
         k = self.settings.top_ranks
         dec = self.settings.p_assoc_decimals
-        for rank, (negp, _, _, tid) in enumerate(order, start=1):
-            value = (round(-negp, dec), rank if rank <= k else None)
-            if tid not in new and value == ev.published.get(tid, (0.0, None)):
-                continue
+        # Ranks: the first k of every candidate ordered by (-P, -odds, FAP, id) are among the groups'
+        # own top k (within a group P follows the odds), so only those are sorted.
+        top_keys = [(neg / g.denominator, neg, fap, tid) for g in ev.groups.values() for neg, fap, tid in g.top]
+        top_keys.sort()
+        rank_of = {key[3]: r for r, key in enumerate(top_keys[:k], start=1)}
+        changed = []
+        for g in ev.groups.values():
+            den = g.denominator
+            odds_of = g.odds
+            for tid in relevant:
+                odds = odds_of.get(tid)
+                if odds is None:
+                    continue
+                p = odds / den
+                value = (round(p, dec), rank_of.get(tid))
+                if tid not in new and value == ev.published.get(tid, (0.0, None)):
+                    continue
+                changed.append((-p, -odds, g.fap[tid], tid, value))
+        changed.sort()  # the order of the full ranking, as the records were always written
+        for _, _, _, tid, value in changed:
             rec = dict(ev.static[tid])
             rec["p_assoc"], rec["rank"] = value
             out.append((ev.event_id, ev.revision, tid, rec))
