@@ -47,7 +47,7 @@ import time
 import urllib.parse
 from contextlib import contextmanager
 from dataclasses import dataclass
-from typing import Any, Iterator, Mapping, Sequence
+from typing import Any, Iterator, Mapping, NamedTuple, Sequence
 
 import orjson
 
@@ -171,8 +171,7 @@ CREATE TABLE IF NOT EXISTS sink_cursors (
 """
 
 
-@dataclass(frozen=True)
-class StoredMessage:
+class StoredMessage(NamedTuple):  # a named tuple: built for every message or result, ~5x cheaper
     """What storing an accepted message did.
 
     Attributes
@@ -237,8 +236,7 @@ class StoredTransient:
     reports: int
 
 
-@dataclass(frozen=True)
-class ResultRow:
+class ResultRow(NamedTuple):  # a named tuple: built for every message or result, ~5x cheaper
     """A stored result; ``record`` is the full output record (it includes ``key`` and ``status``)."""
 
     key: str
@@ -270,8 +268,7 @@ class QuarantineRow:
     raw: bytes
 
 
-@dataclass(frozen=True)
-class OutboxRow:
+class OutboxRow(NamedTuple):  # a named tuple: built for every message or result, ~5x cheaper
     """One output to publish: ``seq`` increases with every change; ``payload`` is JSON text."""
 
     seq: int
