@@ -33,7 +33,7 @@ from matcher.coincidence.fap import (
     node_value,
 )
 from matcher.coincidence.joint_far import joint_far
-from matcher.coincidence.odds import association_probabilities, posterior_odds
+from matcher.coincidence.odds import association_probabilities, group_codes, posterior_odds
 from matcher.coincidence.prior import class_prior, event_probabilities
 from matcher.coincidence.sky_term import equivalent_sigma_deg, sky_overlap
 from matcher.coincidence.table import DISTANCE_SOURCE_NAMES, ScoreTable
@@ -51,8 +51,7 @@ __all__ = [
 
 
 def _class_columns(classes: Mapping[str, CounterpartClass], klass: np.ndarray, ids: np.ndarray):
-    names, inv = np.unique(klass, return_inverse=True)
-    inv = inv.ravel()
+    names, inv = group_codes(klass)
     missing = [n for n in names if n not in classes]
     if missing:
         i = int(np.flatnonzero(klass == missing[0])[0])

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["posterior_odds", "association_probabilities", "PRIOR_MAX"]
+__all__ = ["posterior_odds", "association_probabilities", "group_codes", "PRIOR_MAX"]
 
 PRIOR_MAX = 1.0 - 1e-9
 
@@ -64,7 +64,19 @@ def association_probabilities(odds, groups) -> np.ndarray:
         return o.copy()
     if np.any(~np.isfinite(o)) or np.any(o < 0):
         raise ValueError("odds must be finite and non-negative")
-    _, inv = np.unique(np.asarray(groups), return_inverse=True)
-    inv = inv.ravel()
+    _, inv = group_codes(np.asarray(groups))
     totals = np.bincount(inv, weights=o)
     return o / (1.0 + totals[inv])
+
+
+def group_codes(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(labels, return_inverse=True)`` (inverse flattened), without sorting when all are equal.
+
+    A batch of reports is usually of one class; sorting strings is the slow part of ``np.unique``.
+    """
+    labels = np.asarray(labels)
+    flat = labels.ravel()
+    if flat.size and bool(np.all(flat == flat[0])):
+        return flat[:1].copy(), np.zeros(flat.size, dtype=np.intp)
+    names, inv = np.unique(labels, return_inverse=True)
+    return names, inv.ravel()
