@@ -214,3 +214,21 @@ def test_a_sink_that_is_away_is_retried_not_fatal(stream, golden, tmp_path):
     got = {json.loads(r.payload)["key"] for r in sink.rows}
     assert got == set(reference)
     assert len(sink.rows) == len({r.seq for r in sink.rows})  # each outbox row once
+
+
+def test_loop_gc_restores_the_collector_thresholds():
+    # The loop runs with a larger young-generation threshold and must leave the process as it found it.
+    import gc
+
+    from matcher.service import LOOP_GC_THRESHOLD, loop_gc
+
+    before = gc.get_threshold()
+    with loop_gc():
+        assert gc.get_threshold()[0] == LOOP_GC_THRESHOLD
+    assert gc.get_threshold() == before
+    try:
+        with loop_gc():
+            raise KeyError("x")
+    except KeyError:
+        pass
+    assert gc.get_threshold() == before
