@@ -57,6 +57,7 @@ __all__ = [
     "catalog_settings",
     "open_catalog",
     "loop_gc",
+    "LOOP_GC_THRESHOLD",
 ]
 
 #: Allocations between young-generation collections while the loop runs (Python's default: 700).
