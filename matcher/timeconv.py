@@ -47,6 +47,26 @@ def iso_to_gps(text: str) -> float:
 
     Raises ``ValueError`` with the offending text when it does not parse.
     """
+    if type(text) is str and text[-1:] == "Z":
+        # The usual shape first: datetime.fromisoformat reads a final "Z" itself (Python
+        # 3.11) as the same UTC datetime as "+00:00"; whatever it refuses here (a leading
+        # blank, say) goes the general way, and gets its error there. The sum is
+        # unix_to_gps's, inline.
+        try:
+            t_unix = _fromisoformat(text).timestamp()
+        except ValueError:
+            pass
+        else:
+            return t_unix - GPS_EPOCH_UNIX + _bisect_right(_LEAP_UNIX, t_unix)
+    return _iso_to_gps_general(text)
+
+
+_fromisoformat = datetime.fromisoformat
+_bisect_right = bisect.bisect_right
+
+
+def _iso_to_gps_general(text: str) -> float:
+    """:func:`iso_to_gps` for any text (the reference for its fast path)."""
     if not isinstance(text, str):
         raise ValueError(f"expected an ISO-8601 string, got {type(text).__name__}")
     s = text.strip()
