@@ -173,12 +173,13 @@ def test_three_instances_one_killed_equal_the_single_instance_run(kafka_broker, 
         # Every report was stored, by at least one instance; the group really shared the work.
         ids = {name: transient_ids(st) for name, st in stores.items()}
         assert set().union(*ids.values()) == {f"KT{j:07d}" for j in range(N_REPORTS)}
-        # The group shared the work. Seen once in three CI runs here: one member (not the killed one)
-        # was never given a partition before the others had committed everything (kafka-python
-        # 3.0.12 group join; an open liveness problem, see DEVELOPERS.md). Correctness below does not
-        # depend on it; sharing is asserted for at least two members.
+        # The group shared the work: every member (b counting its restart) held partitions for a
+        # fair part of the run. With the range assignor each of the three holds 2 of the 6 partitions
+        # most of the time, so each stores about a third; a tenth is far below that, and far above
+        # what a member stranded without partitions stores (one batch, or nothing). Such a member was
+        # seen before the source fetched metadata after subscribing (see DEVELOPERS.md).
         shares = {k: len(v) for k, v in ids.items()}
-        assert sum(n > N_REPORTS // 10 for n in shares.values()) >= 2, shares
+        assert all(n > N_REPORTS // 10 for n in shares.values()), shares
         # The union of the results: the reference's keys, and per key the same per-candidate fields.
         union = defaultdict(list)
         for st in stores.values():

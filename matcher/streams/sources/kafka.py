@@ -361,6 +361,12 @@ class KafkaSource:
             self._partitions_of(self._group, [topic])
         with transport_errors(self._what(f"joining group {o.group_id}"), o.connection):
             self._group.subscribe(list(o.report_topics), listener=_listener(self))
+            # One metadata fetch after subscribing and before the first join, so that kafka-python's
+            # coordinator records the topics' partitions before it may lead an assignment. Without it,
+            # a leader assigns against an empty snapshot and rejoins at the next metadata update, and
+            # kafka-python 3.0.12 can lose that second join's result: the member then never gets a
+            # partition again (see DEVELOPERS.md, "A group member that never got a partition").
+            self._group.topics()
 
     # ------------------------------------------------------------- rebalances
     def _event(self, kind: str, tps) -> None:
