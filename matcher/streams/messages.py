@@ -11,8 +11,9 @@ Times are converted once, here, from ISO-8601 UTC to float GPS seconds.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 from matcher.errors import MessageError
 from matcher.timeconv import iso_to_gps
@@ -245,6 +246,18 @@ def message_from_fields(fields: Any, *, codec: str = "native", base_dir: str | N
     ------
     MessageError
     """
+    if type(fields) is dict and fields.get("type") == "transient" and fields.get("schema") == SCHEMA:
+        message = _fast_transient(fields, base_dir)
+        if message is not None:
+            return message
+    return _checked_message(fields, codec, base_dir)
+
+
+def _checked_message(fields: Any, codec: str, base_dir: str | None) -> Message:
+    """:func:`message_from_fields` by the field checks alone: any input, every error.
+
+    The reference that :func:`_fast_transient` must agree with.
+    """
     if not isinstance(fields, Mapping):
         raise MessageError(codec, None, None, f"must be a JSON object, got {type(fields).__name__}")
     schema = fields.get("schema")
@@ -315,3 +328,92 @@ def _transient(f: Mapping[str, Any], codec: str, base_dir: str | None) -> Transi
     loc = c.localization(base_dir, required=False)
     extra = {k: v for k, v in f.items() if k not in _TR_FIELDS}
     return TransientReport(tid, klass, ra, dec, t, t_iso, err, lnd, z, z_err, d, d_err, loc, extra)
+
+
+def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
+    """:func:`_transient` of a plain dict in the usual shape, or None when anything is unusual.
+
+    The usual shape: ids and times are plain strings, numbers are floats (or ints) inside
+    their ranges, no ``localization``. Every check of :func:`_transient` is made here too,
+    only without building an error: whatever fails, is missing where required, or is not of
+    the usual type makes this return None, and the caller runs :func:`_checked_message`,
+    which then gives the same message or the error with its exact text. (About a third of
+    the cost of the checker, which builds an object and makes a call per field.) The tests
+    hold both paths to the same results on a varied set of inputs.
+    """
+    tid = f.get("transient_id")
+    klass = f.get("class")
+    if (type(tid) is not str or type(klass) is not str or len(tid) > 256 or len(klass) > 256
+            or not tid.strip() or not klass.strip()):
+        return None
+    ra = f.get("ra_deg")
+    if type(ra) is float:
+        if not 0.0 <= ra <= 360.0:
+            return None
+    elif type(ra) is int and 0 <= ra <= 360:
+        ra = float(ra)
+    else:
+        return None
+    dec = f.get("dec_deg")
+    if type(dec) is float:
+        if not -90.0 <= dec <= 90.0:
+            return None
+    elif type(dec) is int and -90 <= dec <= 90:
+        dec = float(dec)
+    else:
+        return None
+    err = f.get("pos_err_deg")
+    if err is not None:
+        if type(err) is float:
+            if not 0.0 <= err <= 90.0:
+                return None
+        elif type(err) is int and 0 <= err <= 90:
+            err = float(err)
+        else:
+            return None
+    t_iso = f.get("time")
+    if type(t_iso) is not str:
+        return None
+    try:
+        t = iso_to_gps(t_iso)
+    except ValueError:
+        return None
+    lnd = f.get("last_nondetection")
+    if lnd is not None:
+        if type(lnd) is not str:
+            return None
+        try:
+            lnd = iso_to_gps(lnd)
+        except ValueError:
+            return None
+        if lnd > t:
+            return None
+    z = f.get("redshift")
+    if z is not None:
+        if type(z) is float:
+            if not 0.0 <= z <= 20.0:
+                return None
+        elif type(z) is int and 0 <= z <= 20:
+            z = float(z)
+        else:
+            return None
+    z_err = _fast_positive(f.get("redshift_err"))
+    d = _fast_positive(f.get("distance_mpc"))
+    d_err = _fast_positive(f.get("distance_err_mpc"))
+    if (z_err is not None and (z_err is _UNUSUAL or z is None) or d is _UNUSUAL
+            or d_err is not None and (d_err is _UNUSUAL or d is None) or f.get("localization") is not None):
+        return None
+    extra = {k: v for k, v in f.items() if k not in _TR_FIELDS}
+    return TransientReport(tid, klass, ra, dec, t, t_iso, err, lnd, z, z_err, d, d_err, None, extra)
+
+
+_UNUSUAL = object()
+
+
+def _fast_positive(v):
+    """A finite float > 0 as itself, None as None, anything else (ints too) as ``_UNUSUAL``."""
+    if v is None:
+        return None
+    if type(v) is float and 0.0 < v < math.inf:
+        return v
+    return _UNUSUAL

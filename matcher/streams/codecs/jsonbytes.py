@@ -19,6 +19,10 @@ from matcher.streams.raw import RawItem
 
 __all__ = ["load_json", "check_finite", "check_size"]
 
+# A decoder with json.loads's default options: ``json.loads(text)`` is its ``raw_decode``
+# at the first non-blank character, then a check that only blanks follow.
+_DECODER = json.JSONDecoder()
+
 
 def check_size(item: RawItem, codec: str, max_bytes: int) -> None:
     """Reject an item over ``max_bytes`` (or one its source already truncated)."""
@@ -37,6 +41,25 @@ def load_json(item: RawItem, codec: str, max_bytes: int) -> Any:
     """
     check_size(item, codec, max_bytes)
     data = item.data
+    if data[:1] == b"{" and data[-1:] == b"}":
+        # The usual shape, one object and nothing around it, parsed straight away: what
+        # json.loads does after its checks for a byte-order mark and blanks, which such
+        # text cannot have. Whatever goes wrong here (not UTF-8, bad syntax, too deep,
+        # more after the object) is left to the checked parse, which finds it again and
+        # names it.
+        try:
+            text = data.decode("utf-8")
+            value, end = _DECODER.raw_decode(text)
+        except (ValueError, RecursionError):  # UnicodeDecodeError and JSONDecodeError are ValueErrors
+            pass
+        else:
+            if end == len(text):
+                return value
+    return _parse_checked(data, codec)
+
+
+def _parse_checked(data: bytes, codec: str) -> Any:
+    """Bytes to a JSON value, each step checked and named in the error (the reference for the fast path)."""
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as exc:

@@ -7,6 +7,7 @@ the envelope, not the message: it is read by the source; here it is only checked
 
 from __future__ import annotations
 
+from math import isfinite as _isfinite
 from typing import Any, Mapping
 
 from matcher.errors import ConfigError, MessageError
@@ -48,7 +49,6 @@ class NativeCodec:
     Examples
     --------
     >>> from matcher.streams.raw import RawItem
-from matcher.timeconv import iso_to_gps
     >>> item = RawItem.from_bytes(b'{"schema": "matcher/1", "type": "transient", "transient_id": "T1",'
     ...                           b' "class": "optical", "ra_deg": 10, "dec_deg": -5, "time": "2026-01-02T03:04:05Z"}')
     >>> NativeCodec().decode(item).transient_id
@@ -62,14 +62,16 @@ from matcher.timeconv import iso_to_gps
 
     def decode(self, item: RawItem) -> Message:
         fields = load_json(item, self.name, self.max_bytes)
-        if isinstance(fields, dict) and not ENVELOPE_FIELDS.isdisjoint(fields):
+        if isinstance(fields, dict) and not fields.keys().isdisjoint(ENVELOPE_FIELDS):
             check_received_at(fields, self.name)
             fields = {k: v for k, v in fields.items() if k not in ENVELOPE_FIELDS}
         message = message_from_fields(fields, codec=self.name, base_dir=item.base_dir)
-        if message.extra:
+        for k, v in message.extra.items():
+            kind = type(v)
+            if kind is str or kind is int or kind is float and _isfinite(v):
+                continue  # the usual values, finite as they are
             mid = getattr(message, "event_id", None) or getattr(message, "transient_id", None)
-            for k, v in message.extra.items():
-                check_finite(v, self.name, mid, k)
+            check_finite(v, self.name, mid, k)
         return message
 
 
