@@ -37,6 +37,7 @@ __all__ = ["ArchiveSource", "ArchiveOptions", "HEAD_BYTES"]
 #: How many leading bytes identify an archive file in its position token.
 HEAD_BYTES = 4096
 _MARKER = b'"received_at"'
+_BLANK = b" \t\n\r\x0b\x0c"  # what bytes.strip() removes
 
 
 @dataclass(frozen=True)
@@ -110,6 +111,8 @@ class ArchiveSource:
             raise InputError(f"archive {self.path}: cannot open: {exc.strerror or exc}") from None
         self._head = os.pread(self._fh.fileno(), HEAD_BYTES, 0)
         self._head_hex: dict[int, str] = {}
+        self._head_len = len(self._head)
+        self._head_full = self._head_digest(self._head_len)  # the head of every position past it
         self._offset = 0
         self._line = 0
         self._eof = False
@@ -160,39 +163,45 @@ class ArchiveSource:
 
     def _read_line(self) -> tuple[RawItem, float | None] | None:
         """The next non-blank line as an item with its ``received_at``, or None at the end of the file."""
+        readline, limit = self._fh.readline, self.max_bytes + 3
         while True:
-            raw = self._fh.readline(self.max_bytes + 3)
+            raw = readline(limit)
             if not raw:
                 self._eof = True
                 return None
             consumed = len(raw)
             size = None
-            if not raw.endswith(b"\n") and len(raw) >= self.max_bytes + 3:
-                # Overlong line: keep its head, skip the rest, remember its true length.
-                size = len(raw)
-                while True:
-                    more = self._fh.readline(1 << 20)
-                    consumed += len(more)
-                    if not more or more.endswith(b"\n"):
-                        size += len(more.rstrip(b"\r\n"))
-                        break
-                    size += len(more)
+            if raw[-1] == 10:  # b"\n": a whole line (readline returns at most one)
+                data = raw[:-1]
+            else:
+                data = raw
+                if consumed >= limit:
+                    # Overlong line: keep its head, skip the rest, remember its true length.
+                    size = consumed
+                    while True:
+                        more = self._fh.readline(1 << 20)
+                        consumed += len(more)
+                        if not more or more.endswith(b"\n"):
+                            size += len(more.rstrip(b"\r\n"))
+                            break
+                        size += len(more)
             self._offset += consumed
             self._line += 1
-            data = raw.rstrip(b"\n")
-            if data.endswith(b"\r"):
+            if data[-1:] == b"\r":
                 data = data[:-1]
-            if size is None and not data.strip():
+            if size is None and (not data or data[0] in _BLANK) and not data.strip():
                 continue
             truncated = size is not None or len(data) > self.max_bytes
             if truncated:
                 size = size if size is not None else len(data)
                 data = data[: self.max_bytes + 1]
-            t_recv = None if truncated else _received_at(data)
-            token = f'{{"offset":{self._offset},"line":{self._line},"head":"{self._head_digest(self._offset)}"}}'
-            item = RawItem(data, Origin(self.name, "archive", self.path, None, self._line), (self.stream, token),
+            t_recv = None if truncated or _MARKER not in data else _received_at(data)
+            offset, line = self._offset, self._line
+            head = self._head_full if offset >= self._head_len else self._head_digest(offset)
+            item = RawItem(data, Origin(self.name, "archive", self.path, None, line),
+                           (self.stream, f'{{"offset":{offset},"line":{line},"head":"{head}"}}'),
                            t_recv if t_recv is not None else self._wall(), self.base_dir,
-                           truncated=truncated, size=len(data) if size is None else size)
+                           truncated, len(data) if size is None else size)
             return item, t_recv
 
     def _due(self, t_recv: float | None) -> float:
@@ -209,6 +218,14 @@ class ArchiveSource:
         When paced, waits up to ``timeout_s`` for the next line to fall due.
         """
         items: list[RawItem] = []
+        if self.speed is None:  # as fast as possible: every line is due at once, none is ever pending
+            read = self._read_line
+            while len(items) < max_items and not self._eof:
+                got = read()
+                if got is None:
+                    break
+                items.append(got[0])
+            return items
         deadline = self._clock() + max(0.0, timeout_s)
         while len(items) < max_items:
             if self._pending is None:
