@@ -397,11 +397,13 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
             z = float(z)
         else:
             return None
-    z_err = _fast_positive(f.get("redshift_err"))
-    d = _fast_positive(f.get("distance_mpc"))
-    d_err = _fast_positive(f.get("distance_err_mpc"))
-    if (z_err is not None and (z_err is _UNUSUAL or z is None) or d is _UNUSUAL
-            or d_err is not None and (d_err is _UNUSUAL or d is None) or f.get("localization") is not None):
+    z_err, d, d_err = f.get("redshift_err"), f.get("distance_mpc"), f.get("distance_err_mpc")
+    if z_err is not None or d is not None or d_err is not None:
+        z_err, d, d_err = _fast_positive(z_err), _fast_positive(d), _fast_positive(d_err)
+        if (z_err is not None and (z_err is _UNUSUAL or z is None) or d is _UNUSUAL
+                or d_err is not None and (d_err is _UNUSUAL or d is None)):
+            return None
+    if f.get("localization") is not None:
         return None
     extra = {k: v for k, v in f.items() if k not in _TR_FIELDS}
     return TransientReport(tid, klass, ra, dec, t, t_iso, err, lnd, z, z_err, d, d_err, None, extra)
