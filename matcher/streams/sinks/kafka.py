@@ -22,6 +22,7 @@ store's cursor.
 from __future__ import annotations
 
 import collections
+import time
 from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
@@ -106,6 +107,9 @@ class KafkaSink:
         self._futures: list[tuple[OutboxRow, Any]] = []
         #: Counters for the dashboard and tests: ``sent`` (acknowledged), ``failed``, ``producers``.
         self.stats = collections.Counter()
+        #: Seconds (wall clock, the caller's thread) in :meth:`write` (handing records to the
+        #: producer) and in :meth:`flush` (waiting for the broker's acknowledgements).
+        self.seconds = dict.fromkeys(("send", "flush"), 0.0)
 
     def __repr__(self) -> str:
         return (f"KafkaSink({self.name!r}, brokers={self.options.connection.servers_text!r}, "
@@ -162,17 +166,22 @@ class KafkaSink:
 
         if self._producer is None:
             self._make_producer()
+        t0 = time.perf_counter()
         topic, headers = self.options.topic, self.options.headers
         send = self._producer.send
-        for r in rows:
-            h = [("matcher-kind", r.kind.encode("utf-8")), ("matcher-seq", str(r.seq).encode("ascii"))] \
-                if headers else None
-            try:
-                fut = send(topic, key=r.key.encode("utf-8"), value=r.payload.encode("utf-8"), headers=h)
-            except (kerr.KafkaError, OSError) as exc:
-                self._abandon()
-                raise self._error(f"cannot send outbox row {r.seq} (key {r.key})", exc) from None
-            self._futures.append((r, fut))
+        keep = self._futures.append
+        try:
+            for r in rows:
+                h = [("matcher-kind", r.kind.encode("utf-8")), ("matcher-seq", str(r.seq).encode("ascii"))] \
+                    if headers else None
+                try:
+                    fut = send(topic, key=r.key.encode("utf-8"), value=r.payload.encode("utf-8"), headers=h)
+                except (kerr.KafkaError, OSError) as exc:
+                    self._abandon()
+                    raise self._error(f"cannot send outbox row {r.seq} (key {r.key})", exc) from None
+                keep((r, fut))
+        finally:
+            self.seconds["send"] += time.perf_counter() - t0
 
     def flush(self) -> None:
         """Return once every row written since the last flush is acknowledged.
@@ -190,11 +199,14 @@ class KafkaSink:
             return
         futures, self._futures = self._futures, []
         timeout_s = self.options.delivery_timeout_ms / 1000.0 + 5.0
+        t0 = time.perf_counter()
         try:
             self._producer.flush(timeout=timeout_s)
         except (kerr.KafkaError, OSError) as exc:
             self._abandon()
             raise self._error(f"{len(futures)} result(s) not acknowledged; they stay in the outbox", exc) from None
+        finally:
+            self.seconds["flush"] += time.perf_counter() - t0
         failed = []
         for row, fut in futures:
             if not fut.is_done:

@@ -10,10 +10,14 @@ in one consumer):
   transaction; :meth:`KafkaSource.resume` seeks there).
 * ``topics.reports`` (transient reports: many) are read **through the consumer group**
   ``group_id``: Kafka splits their partitions across the running instances. Offsets
-  are committed to Kafka only in :meth:`KafkaSource.commit`, which the service calls
+  are committed to Kafka only from :meth:`KafkaSource.commit`, which the service calls
   after the batch's results are durable in SQLite; each commit names its partitions
   with explicit ``OffsetAndMetadata(offset, metadata, leader_epoch)`` and never goes
-  past an item that was handed out but not yet settled.
+  past an item that was handed out but not yet settled. These commits are sent
+  asynchronously (the loop does not wait ~10 ms for each round trip) and every answer
+  is checked: refused after a rebalance, the offsets are dropped (the new owner reads
+  those items again); failed otherwise, they are sent again. A clean stop commits
+  synchronously.
 
 On start, the alerts are read up to the end they had then before any report is
 taken, so reports are scored against every event already announced.
@@ -74,6 +78,10 @@ ROLES = ("alerts", "reports")
 # are assigned from their beginning), and how often it retries a failed offset commit.
 _PARTITION_CHECK_S = 30.0
 _COMMIT_RETRY_S = 1.0
+# Asynchronous offset commits at most in flight at once. kafka-python hands a commit's answer
+# over only during a later call on the service's thread, so with one allowed every other
+# batch would wait for the next; two keep one commit per batch without piling up.
+_COMMITS_IN_FLIGHT = 2
 _END_CHECK_S = 1.0
 
 
@@ -125,11 +133,13 @@ class KafkaSourceOptions:
     session_timeout_ms, heartbeat_interval_ms, max_poll_interval_ms : int, ms
         Group membership timing (a dead instance's partitions move after ``session_timeout_ms``).
     commit_timeout_ms : int, ms
-        How long one offset commit may wait; a failed commit is retried, never lost.
+        How long a synchronous offset commit (at a clean stop) may wait, and after how long
+        an asynchronous one without an answer is sent again; a failed commit is retried,
+        never lost.
     commit_interval_ms : int, ms
-        0 (default): commit after every batch. Otherwise at most this often (each commit
-        is a round trip to the group coordinator); what the store holds but Kafka does
-        not yet is read again after a crash or rebalance, and recognised by the store.
+        0 (default): commit after every batch (asynchronously). Otherwise at most this
+        often; what the store holds but Kafka does not yet is read again after a crash or
+        rebalance, and recognised by the store.
     stop_at_end : bool
         Finish once everything that was on the topics at start is processed (alerts by
         this instance; reports committed by the group): for replays, tests and benchmarks.
@@ -184,10 +194,11 @@ def _listener(source: KafkaSource):
 class _Partition:
     """Bookkeeping of one partition on the service's thread."""
 
-    __slots__ = ("role", "out", "settled", "done", "end", "position")
+    __slots__ = ("role", "tp", "out", "settled", "done", "end", "position")
 
-    def __init__(self, role: str):
+    def __init__(self, role: str, tp):
         self.role = role
+        self.tp = tp  # its TopicPartition
         self.out: collections.deque = collections.deque()  # (offset, leader_epoch) handed out, in order
         self.settled: set[int] = set()  # offsets settled, not yet at the front of ``out``
         self.done: int | None = None  # next offset durably processed (stored; for reports: committed)
@@ -233,12 +244,17 @@ class KafkaSource:
         self._pending: dict[Any, Any] = {}  # TopicPartition -> OffsetAndMetadata, durable but not committed
         self._last_commit_try = 0.0
         self._commit_failed = False
+        self._commits_in_flight = 0  # asynchronous commits sent, answer not yet handed to _commit_answer
+        self._sent: dict[Any, Any] = {}  # TopicPartition -> the pending OffsetAndMetadata last sent
         self._last_partition_check = 0.0
         self._end_at_start: dict | None = None
         self._last_end_check = 0.0
         self._finished = False
         #: Counters for the dashboard and tests.
         self.stats = collections.Counter()
+        #: Seconds spent (service thread, wall clock) in kafka-python's ``poll`` (``consume``), in making
+        #: the items and their bookkeeping (``items``), and in :meth:`commit` (``commit``).
+        self.seconds = dict.fromkeys(("consume", "items", "commit"), 0.0)
 
     def __repr__(self) -> str:
         o = self.options
@@ -317,7 +333,7 @@ class KafkaSource:
                 self._alerts.seek(tp, pos)
         fresh = []
         for tp in new:
-            st = self._parts[tp] = _Partition("alerts")
+            st = self._parts[tp] = _Partition("alerts", tp)
             token = self._positions.get(stream_name(tp.topic, tp.partition))
             if token is None:
                 fresh.append(tp)
@@ -383,6 +399,7 @@ class KafkaSource:
                 self.stats["rebalances"] += bool(tps)
                 for tp in tps:
                     self._pending.pop(tp, None)
+                    self._sent.pop(tp, None)
                     st = self._parts.pop(tp, None)
                     if st is not None and st.out:
                         self.stats["dropped_in_flight"] += len(st.out)
@@ -391,7 +408,8 @@ class KafkaSource:
                              ", ".join(f"{tp.topic}[{tp.partition}]" for tp in tps))
             else:
                 for tp in tps:
-                    self._parts.setdefault(tp, _Partition("reports"))
+                    if tp not in self._parts:
+                        self._parts[tp] = _Partition("reports", tp)
                 if tps:
                     LOG.info("kafka source %s: partitions assigned: %s", self.name,
                              ", ".join(f"{tp.topic}[{tp.partition}]" for tp in tps))
@@ -447,6 +465,7 @@ class KafkaSource:
         return [tp for tp, st in self._parts.items() if st.role == role]
 
     def _fetch(self, consumer, role: str, max_items: int, wait_s: float) -> list[RawItem]:
+        t0 = time.perf_counter()
         try:
             records = consumer.poll(timeout_ms=int(wait_s * 1000), max_records=max_items)
         except Exception as exc:  # kafka-python raises its own errors and OSErrors; outages are waited out
@@ -458,12 +477,17 @@ class KafkaSource:
             LOG.warning("kafka source %s: poll failed (%s); retrying", self.name, type(exc).__name__)
             time.sleep(min(1.0, wait_s))
             return []
+        finally:
+            t1 = time.perf_counter()
+            self.seconds["consume"] += t1 - t0
         if role == "reports":
             self._drain_events()
             owned = consumer.assignment() if records else set()
         now = time.time()
         items: list[RawItem] = []
         mode = self.options.received_at
+        by_message, by_arrival = mode == "message", mode == "arrival"
+        name, max_bytes, inflight = self.name, self.max_bytes, self._inflight
         for tp, recs in records.items():
             if role == "reports" and tp not in owned:
                 # Revoked or lost during this poll: not handed out, not committed; the
@@ -472,30 +496,33 @@ class KafkaSource:
                 continue
             st = self._parts.get(tp)
             if st is None:
-                st = self._parts[tp] = _Partition(role)
+                st = self._parts[tp] = _Partition(role, tp)
             stream = stream_name(tp.topic, tp.partition)
             if st.done is None and recs:
                 st.done = recs[0].offset  # where this instance started on the partition
+            topic, part, alerts = tp.topic, tp.partition, role == "alerts"
+            hand_out, keep = st.out.append, items.append
             for r in recs:
                 data = r.value if r.value is not None else b""
                 size = len(data)
-                truncated = size > self.max_bytes
+                truncated = size > max_bytes
                 if truncated:
-                    data = data[: self.max_bytes + 1]
+                    data = data[: max_bytes + 1]
                 t = None
-                if mode == "message" and not truncated:
+                if by_message and not truncated:
                     t = _message_received_at(data)
                 if t is None:
-                    t = now if (mode == "arrival" or r.timestamp is None or r.timestamp <= 0) else r.timestamp / 1000.0
-                items.append(RawItem(data, Origin(self.name, "kafka", r.topic, r.partition, r.offset),
-                                     (stream, str(r.offset + 1)) if role == "alerts" else None,
-                                     t, None, truncated=truncated, size=size))
-                st.out.append((r.offset, r.leader_epoch if r.leader_epoch is not None else -1))
-                self._inflight[(r.topic, r.partition, r.offset)] = st
+                    t = now if (by_arrival or r.timestamp is None or r.timestamp <= 0) else r.timestamp / 1000.0
+                off = r.offset
+                keep(RawItem(data, Origin(name, "kafka", topic, part, off),
+                             (stream, str(off + 1)) if alerts else None, t, None, truncated=truncated, size=size))
+                hand_out((off, r.leader_epoch if r.leader_epoch is not None else -1))
+                inflight[(topic, part, off)] = st
             if recs:
                 st.position = recs[-1].offset + 1
         self._note_positions(consumer, role)
         self.stats[f"{role}_polled"] += len(items)
+        self.seconds["items"] += time.perf_counter() - t1
         return items
 
     def _note_positions(self, consumer, role: str) -> None:
@@ -504,7 +531,7 @@ class KafkaSource:
         for tp in assigned:
             st = self._parts.get(tp)
             if st is None:
-                st = self._parts[tp] = _Partition(role)
+                st = self._parts[tp] = _Partition(role, tp)
             hw = consumer.highwater(tp)
             if hw is not None:
                 st.end = hw
@@ -522,29 +549,36 @@ class KafkaSource:
         """Called after the store committed these items: advance offsets past them.
 
         Alert partitions: the offsets are already in the store (the items' positions);
-        only the lag bookkeeping moves. Report partitions still owned: one synchronous
-        commit of explicit ``OffsetAndMetadata`` per partition, up to the first item not
-        yet settled. Partitions revoked or lost since their items were handed out are
-        skipped (their new owner reads those items again). A commit that fails (broker
-        away, rebalance in progress) stays pending and is retried; it never raises.
+        only the lag bookkeeping moves. Report partitions still owned: explicit
+        ``OffsetAndMetadata`` per partition, up to the first item not yet settled, sent
+        to the group coordinator **asynchronously** (at most two commits in flight; each
+        carries every offset not yet acknowledged, so a later one also retries an earlier
+        one that failed). The service does not wait for the round trip: a commit can
+        only name items the store already holds, so an answer that never comes costs a
+        re-read after a crash or rebalance, which the store recognises. Partitions revoked
+        or lost since their items were handed out are skipped (their new owner reads those
+        items again). A commit that fails (broker away, rebalance in progress) is retried
+        or, after a rebalance, dropped; it never raises. :meth:`flush_commits` and
+        :meth:`close` commit synchronously.
         """
-        from kafka import OffsetAndMetadata, TopicPartition
+        from kafka import OffsetAndMetadata
 
+        t0 = time.perf_counter()
         self._drain_events()
         touched = set()
+        name, inflight, parts = self.name, self._inflight, self._parts
         for s in settled:
             o = s.item.origin
-            if o.kind != "kafka" or o.source != self.name or o.part is None:
+            if o.kind != "kafka" or o.source != name or o.part is None:
                 continue
-            tp = TopicPartition(o.where, o.part)
-            st = self._inflight.pop((o.where, o.part, o.offset), None)
-            if st is None or self._parts.get(tp) is not st:
+            st = inflight.pop((o.where, o.part, o.offset), None)
+            if st is None or parts.get(st.tp) is not st:
                 self.stats["commit_skipped_revoked"] += 1  # revoked or lost since it was handed out
                 continue
             st.settled.add(o.offset)
-            touched.add(tp)
-        for tp in touched:
-            st = self._parts[tp]
+            touched.add(st)
+        for st in touched:
+            tp = st.tp
             last = None
             while st.out and st.out[0][0] in st.settled:
                 off, epoch = st.out.popleft()
@@ -556,11 +590,26 @@ class KafkaSource:
                 st.done = last[0] + 1
             else:
                 self._pending[tp] = OffsetAndMetadata(last[0] + 1, f"matcher:{self.name}", last[1])
-        interval = self.options.commit_interval_ms / 1000.0
-        if not interval or time.monotonic() - self._last_commit_try >= interval:
-            self._commit_pending()
+        if touched:
+            self._retry_commit()
+        self.seconds["commit"] += time.perf_counter() - t0
 
-    def _commit_pending(self) -> None:
+    def flush_commits(self) -> bool:
+        """Commit every settled offset of an owned partition now, and wait for the broker's answer.
+
+        What :meth:`close` does before leaving the group; tests use it to look at the
+        group's offsets at a known point. Returns True when nothing is left pending.
+        """
+        if self._group is None:
+            return not self._pending
+        t0 = time.perf_counter()
+        self._drain_events()
+        self._commit_pending(wait=True)
+        self.seconds["commit"] += time.perf_counter() - t0
+        return not self._pending
+
+    def _commit_pending(self, *, wait: bool = False) -> None:
+        """Send the pending offsets of owned partitions (asynchronously, or with ``wait`` synchronously)."""
         if not self._pending or self._group is None:
             return
         from kafka import errors as kerr
@@ -573,35 +622,76 @@ class KafkaSource:
         if not offsets:
             return
         self._last_commit_try = time.monotonic()
+        self._sent.update(offsets)
+        if not wait:
+            # kafka-python hands the answer to the callback during a later call on this thread
+            # (poll, commit): _commit_answer runs on the service's thread, like everything here.
+            self._commits_in_flight += 1
+            try:
+                self._group.commit_async(offsets, callback=self._async_answer)
+            except (kerr.KafkaError, OSError) as exc:
+                self._commits_in_flight -= 1
+                self._commit_answer(offsets, exc)
+            return
         try:
             self._group.commit(offsets, timeout_ms=self.options.commit_timeout_ms)
-        except (kerr.CommitFailedError, kerr.IllegalGenerationError, kerr.UnknownMemberIdError,
-                kerr.RebalanceInProgressError, kerr.FencedInstanceIdError) as exc:
+        except (kerr.KafkaError, OSError) as exc:
+            self._commit_answer(offsets, exc)
+            return
+        self._commit_answer(offsets, None)
+
+    def _async_answer(self, offsets, response) -> None:
+        self._commits_in_flight = max(0, self._commits_in_flight - 1)
+        self._commit_answer(offsets, response if isinstance(response, BaseException) else None)
+
+    def _commit_answer(self, offsets: Mapping, exc: BaseException | None) -> None:
+        """Book the broker's answer to a commit of ``offsets`` (``exc`` None: accepted)."""
+        from kafka import errors as kerr
+
+        if exc is None:
+            self._commit_failed = False
+            self.stats["commits"] += 1
+            for tp, om in offsets.items():
+                if self._pending.get(tp) is om:  # not superseded by a later batch meanwhile
+                    del self._pending[tp]
+                st = self._parts.get(tp)
+                if st is not None:
+                    st.done = om.offset if st.done is None else max(st.done, om.offset)
+            return
+        if isinstance(exc, (kerr.CommitFailedError, kerr.IllegalGenerationError, kerr.UnknownMemberIdError,
+                            kerr.RebalanceInProgressError, kerr.FencedInstanceIdError)):
             # The group moved on: these partitions will be read again by their new owner.
             self.stats["commit_failed_rebalance"] += 1
             LOG.warning("kafka source %s: offset commit refused after a rebalance (%s); the new owner "
                         "re-reads %d partition(s)", self.name, type(exc).__name__, len(offsets))
-            for tp in offsets:
-                self._pending.pop(tp, None)
+            for tp, om in offsets.items():
+                if self._pending.get(tp) is om:
+                    del self._pending[tp]
             return
-        except (kerr.KafkaError, OSError) as exc:
-            self.stats["commit_retries"] += 1
-            self._commit_failed = True
-            LOG.warning("kafka source %s: offset commit failed (%s); will retry", self.name, type(exc).__name__)
-            return
-        self._commit_failed = False
-        self.stats["commits"] += 1
+        self.stats["commit_retries"] += 1
+        self._commit_failed = True
         for tp, om in offsets.items():
-            if self._pending.get(tp) is om:
-                del self._pending[tp]
-            st = self._parts.get(tp)
-            if st is not None:
-                st.done = om.offset if st.done is None else max(st.done, om.offset)
+            if self._sent.get(tp) is om:
+                del self._sent[tp]  # to be sent again
+        LOG.warning("kafka source %s: offset commit failed (%s); will retry", self.name, type(exc).__name__)
 
     def _retry_commit(self) -> None:
-        """Commit what is pending: after a failure (not sooner than a second later), or once the interval passed."""
+        """Send pending offsets not yet sent: at once (or once ``commit_interval_ms`` passed), a second after a failure."""
+        if not self._pending:
+            return
+        now = time.monotonic()
+        if self._commits_in_flight:
+            if now - self._last_commit_try >= self.options.commit_timeout_ms / 1000.0:
+                # An answer overdue by more than a commit's timeout is taken as lost: send again
+                # (a commit names absolute offsets; sending one twice changes nothing).
+                self._commits_in_flight = 0
+                self._sent.clear()
+            elif self._commits_in_flight >= _COMMITS_IN_FLIGHT:
+                return
+        if all(self._sent.get(tp) is om for tp, om in self._pending.items()):
+            return  # all of it is in flight already
         wait = max(self.options.commit_interval_ms / 1000.0, _COMMIT_RETRY_S if self._commit_failed else 0.0)
-        if self._pending and time.monotonic() - self._last_commit_try >= wait:
+        if now - self._last_commit_try >= wait:
             self._commit_pending()
 
     def _check_alert_partitions(self) -> None:
@@ -693,7 +783,7 @@ class KafkaSource:
             if self._group is not None:
                 self._drain_events()
                 try:
-                    self._commit_pending()
+                    self._commit_pending(wait=True)
                 finally:
                     self._group.close(autocommit=False, timeout_ms=5000)
         finally:
