@@ -8,12 +8,15 @@ reference below follows that text with plain ``bytes`` operations and ``hashlib`
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
+import pickle
 import random
 
 import pytest
 
+from matcher.streams.raw import Origin, RawItem
 from matcher.streams.sources import ArchiveSource
 from matcher.streams.sources.archive import HEAD_BYTES
 from matcher.timeconv import gps_to_unix, iso_to_gps
@@ -85,7 +88,10 @@ def test_unpaced_lines_and_positions_follow_the_documented_rules(tmp_path, seed,
             assert item.received_at == 42.0  # no (readable) received_at: the time it was read
 
 
-def test_paced_and_unpaced_reads_give_the_same_items(tmp_path):
+@pytest.mark.parametrize("max_bytes", [16 * 1024 * 1024, 60, 40])
+def test_paced_and_unpaced_reads_give_the_same_items(tmp_path, max_bytes):
+    # The unpaced loop makes the usual line's item itself; the paced loop reads every line the
+    # general way. Small limits put lines just under, at and over the size limit.
     content = archive_bytes(9)
     path = tmp_path / "a.jsonl"
     path.write_bytes(content)
@@ -94,10 +100,37 @@ def test_paced_and_unpaced_reads_give_the_same_items(tmp_path):
     def sleep(s):
         now[0] += s
 
-    with ArchiveSource("a", path, wall_clock=lambda: 42.0) as fast:
+    with ArchiveSource("a", path, max_bytes=max_bytes, wall_clock=lambda: 42.0) as fast:
         unpaced = poll_all(fast, 13)
-    with ArchiveSource("a", path, speed=1e9, clock=lambda: now[0], sleep=sleep, wall_clock=lambda: 42.0) as slow:
+    with ArchiveSource("a", path, max_bytes=max_bytes, speed=1e9, clock=lambda: now[0], sleep=sleep,
+                       wall_clock=lambda: 42.0) as slow:
         paced = []
         while not slow.finished:
             paced += slow.poll(13, timeout_s=1.0)
     assert unpaced == paced
+    sizes = {len(i.data) for i in unpaced}
+    if max_bytes < 100:
+        assert {max_bytes - 1, max_bytes, max_bytes + 1} <= sizes and any(i.truncated for i in unpaced)
+
+
+def test_items_are_the_objects_the_constructors_build(tmp_path):
+    # The source builds its items without the dataclasses' generated __init__; they must be
+    # the very objects RawItem(...) and Origin(...) give: equal, same hash, repr and fields,
+    # still frozen, and the same after a pickle round trip.
+    path = tmp_path / "a.jsonl"
+    path.write_bytes(archive_bytes(4))
+    with ArchiveSource("a", path, wall_clock=lambda: 42.0) as src:
+        items = poll_all(src, 50)
+    assert items
+    for item in items:
+        o = item.origin
+        origin = Origin(o.source, o.kind, o.where, o.part, o.offset)
+        built = RawItem(item.data, origin, item.position, item.received_at, item.base_dir,
+                        truncated=item.truncated, size=item.size)
+        for got, want in ((o, origin), (item, built)):
+            assert type(got) is type(want) and got == want and hash(got) == hash(want)
+            assert repr(got) == repr(want) and list(vars(got).items()) == list(vars(want).items())
+            assert pickle.loads(pickle.dumps(got)) == want
+            with pytest.raises(dataclasses.FrozenInstanceError):
+                got.size = 0
+        assert str(o) == str(origin) and o.identity() == origin.identity() and item.dedup_key == built.dedup_key

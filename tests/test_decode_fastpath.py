@@ -8,7 +8,9 @@ rejection (text, codec, message id, field) for every input, good or bad.
 
 from __future__ import annotations
 
+import dataclasses
 import json
+import pickle
 import random
 from collections import Counter, OrderedDict
 from types import MappingProxyType
@@ -19,7 +21,8 @@ from matcher.errors import MessageError
 from matcher.streams.codecs import NativeCodec
 from matcher.streams.codecs.jsonbytes import _parse_checked, check_finite, check_size, load_json
 from matcher.streams.codecs.native import ENVELOPE_FIELDS, check_received_at
-from matcher.streams.messages import _checked_message, _fast_transient, message_from_fields
+from matcher.streams.intake import Accepted, decode_item
+from matcher.streams.messages import TransientReport, _checked_message, _fast_transient, message_from_fields
 from matcher.streams.raw import RawItem
 
 # ---------------------------------------------------------------------------- inputs (invented)
@@ -199,3 +202,27 @@ def test_load_json_equals_the_checked_parse(data):
             return ("rejected", str(exc), exc.field)
 
     assert parse(lambda: load_json(item, "native", 1 << 24)) == parse(lambda: _parse_checked(data, "native"))
+
+
+def test_fast_results_are_the_objects_the_constructors_build():
+    # The fast path builds the report and decode_item its Accepted without the dataclasses'
+    # generated __init__: they must be the very objects the constructors give (equal, same
+    # repr and fields, still frozen, the same after a pickle round trip).
+    codec = NativeCodec()
+    seen = 0
+    for data in varied_lines(seed=3, n_random=300):
+        item = RawItem.from_bytes(data, base_dir="/data", received_at=1.0)
+        got = decode_item(item, codec)
+        if not isinstance(got, Accepted) or not isinstance(got.message, TransientReport):
+            continue
+        m = got.message
+        report = TransientReport(**{f.name: getattr(m, f.name) for f in dataclasses.fields(TransientReport)})
+        accepted = Accepted(item, "native", report, got.localization)
+        for fast, built in ((m, report), (got, accepted)):
+            assert type(fast) is type(built) and fast == built and repr(fast) == repr(built)
+            assert list(vars(fast).items()) == list(vars(built).items())
+            assert pickle.loads(pickle.dumps(fast)) == built
+            with pytest.raises(dataclasses.FrozenInstanceError):
+                fast.codec = "x"
+        seen += 1
+    assert seen > 100

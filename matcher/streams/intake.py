@@ -69,7 +69,11 @@ def decode_item(item: RawItem, codec: Codec, limits: LocalizationLimits = Locali
         return Rejected(item, codec.name, str(exc), exc.field)
     loc = getattr(message, "localization", None)
     if loc is None:
-        return Accepted(item, codec.name, message)
+        # Accepted(item, codec.name, message), the same object built without the generated
+        # __init__ (an object.__setattr__ call per field): this is the result of almost every item.
+        accepted = object.__new__(Accepted)
+        accepted.__dict__.update(item=item, codec=codec.name, message=message, localization=None, reason=None)
+        return accepted
     try:
         loaded = load_localization(loc, limits, opener=opener)
     except SkyMapError as exc:

@@ -41,6 +41,18 @@ class Origin:
     part: int | None = None
     offset: int | None = None
 
+    @classmethod
+    def _of(cls, source: str, kind: str, where: str, part: int | None, offset: int | None) -> Origin:
+        """``Origin(source, kind, where, part, offset)`` for a source that makes one per item.
+
+        The same object (type, fields, equality, hash, repr), built without the generated
+        ``__init__`` of a frozen dataclass, which pays an ``object.__setattr__`` call per
+        field; the instance keeps its fields in a ``__dict__`` of its own.
+        """
+        origin = object.__new__(cls)
+        origin.__dict__.update(source=source, kind=kind, where=where, part=part, offset=offset)
+        return origin
+
     def __str__(self) -> str:
         if self.kind == "archive" and self.offset is not None:
             return f"{self.where} line {self.offset}"
@@ -92,6 +104,19 @@ class RawItem:
             object.__setattr__(self, "data", bytes(self.data))
         if self.size < 0:
             object.__setattr__(self, "size", len(self.data))
+
+    @classmethod
+    def _read(cls, data: bytes, origin: Origin, position: tuple[str, str] | None, received_at: float,
+              base_dir: str | None, truncated: bool, size: int) -> RawItem:
+        """``RawItem(...)`` for a source that has ``data`` as bytes and its ``size`` already.
+
+        The same object, built as :meth:`Origin._of` builds its own (``__post_init__``
+        would change nothing here).
+        """
+        item = object.__new__(cls)
+        item.__dict__.update(data=data, origin=origin, position=position, received_at=received_at,
+                             base_dir=base_dir, truncated=truncated, size=size)
+        return item
 
     @classmethod
     def from_bytes(cls, data: bytes, *, base_dir: str | None = None, name: str = "<bytes>",

@@ -163,46 +163,78 @@ class ArchiveSource:
 
     def _read_line(self) -> tuple[RawItem, float | None] | None:
         """The next non-blank line as an item with its ``received_at``, or None at the end of the file."""
-        readline, limit = self._fh.readline, self.max_bytes + 3
         while True:
-            raw = readline(limit)
+            raw = self._fh.readline(self.max_bytes + 3)
             if not raw:
                 self._eof = True
                 return None
-            consumed = len(raw)
-            size = None
-            if raw[-1] == 10:  # b"\n": a whole line (readline returns at most one)
-                data = raw[:-1]
+            got = self._item(raw)
+            if got is not None:
+                return got
+
+    def _item(self, raw: bytes) -> tuple[RawItem, float | None] | None:
+        """The item of a line just read (``raw``, with its terminator) and its ``received_at``; None if blank."""
+        consumed = len(raw)
+        size = None
+        if raw[-1] == 10:  # b"\n": a whole line (readline returns at most one)
+            data = raw[:-1]
+        else:
+            data = raw
+            if consumed >= self.max_bytes + 3:
+                # Overlong line: keep its head, skip the rest, remember its true length.
+                size = consumed
+                while True:
+                    more = self._fh.readline(1 << 20)
+                    consumed += len(more)
+                    if not more or more.endswith(b"\n"):
+                        size += len(more.rstrip(b"\r\n"))
+                        break
+                    size += len(more)
+        self._offset += consumed
+        self._line += 1
+        if data[-1:] == b"\r":
+            data = data[:-1]
+        if size is None and not data.strip():
+            return None
+        truncated = size is not None or len(data) > self.max_bytes
+        if truncated:
+            size = size if size is not None else len(data)
+            data = data[: self.max_bytes + 1]
+        t_recv = None if truncated else _received_at(data)
+        offset, line = self._offset, self._line
+        head = self._head_full if offset >= self._head_len else self._head_digest(offset)
+        item = RawItem._read(data, Origin._of(self.name, "archive", self.path, None, line),
+                             (self.stream, f'{{"offset":{offset},"line":{line},"head":"{head}"}}'),
+                             t_recv if t_recv is not None else self._wall(), self.base_dir,
+                             truncated, len(data) if size is None else size)
+        return item, t_recv
+
+    def _read_unpaced(self, items: list[RawItem], max_items: int) -> None:
+        """Append the next lines' items to ``items``, up to ``max_items`` (what :meth:`_read_line` gives).
+
+        The usual line (ends in ``\\n`` and no ``\\r``, starts with no blank, within the size
+        limit, no ``received_at``) is made into its item here; any other goes to :meth:`_item`.
+        """
+        readline, limit, usual_max = self._fh.readline, self.max_bytes + 3, self.max_bytes + 1
+        name, path, stream, base_dir, wall = self.name, self.path, self.stream, self.base_dir, self._wall
+        head_len, head_full = self._head_len, self._head_full
+        while len(items) < max_items:
+            raw = readline(limit)
+            if not raw:
+                self._eof = True
+                return
+            n = len(raw)
+            if raw[-1] == 10 and raw[0] not in _BLANK and raw[-2] != 13 and n <= usual_max and _MARKER not in raw:
+                offset = self._offset = self._offset + n
+                line = self._line = self._line + 1
+                head = head_full if offset >= head_len else self._head_digest(offset)
+                items.append(RawItem._read(raw[:-1], Origin._of(name, "archive", path, None, line),
+                                           (stream, f'{{"offset":{offset},"line":{line},"head":"{head}"}}'),
+                                           wall(), base_dir, False, n - 1))
             else:
-                data = raw
-                if consumed >= limit:
-                    # Overlong line: keep its head, skip the rest, remember its true length.
-                    size = consumed
-                    while True:
-                        more = self._fh.readline(1 << 20)
-                        consumed += len(more)
-                        if not more or more.endswith(b"\n"):
-                            size += len(more.rstrip(b"\r\n"))
-                            break
-                        size += len(more)
-            self._offset += consumed
-            self._line += 1
-            if data[-1:] == b"\r":
-                data = data[:-1]
-            if size is None and (not data or data[0] in _BLANK) and not data.strip():
-                continue
-            truncated = size is not None or len(data) > self.max_bytes
-            if truncated:
-                size = size if size is not None else len(data)
-                data = data[: self.max_bytes + 1]
-            t_recv = None if truncated or _MARKER not in data else _received_at(data)
-            offset, line = self._offset, self._line
-            head = self._head_full if offset >= self._head_len else self._head_digest(offset)
-            item = RawItem(data, Origin(self.name, "archive", self.path, None, line),
-                           (self.stream, f'{{"offset":{offset},"line":{line},"head":"{head}"}}'),
-                           t_recv if t_recv is not None else self._wall(), self.base_dir,
-                           truncated, len(data) if size is None else size)
-            return item, t_recv
+                got = self._item(raw)
+                if got is not None:
+                    items.append(got[0])
 
     def _due(self, t_recv: float | None) -> float:
         """Clock time at which a line received at ``t_recv`` is released (paced mode)."""
@@ -219,12 +251,8 @@ class ArchiveSource:
         """
         items: list[RawItem] = []
         if self.speed is None:  # as fast as possible: every line is due at once, none is ever pending
-            read = self._read_line
-            while len(items) < max_items and not self._eof:
-                got = read()
-                if got is None:
-                    break
-                items.append(got[0])
+            if not self._eof:
+                self._read_unpaced(items, max_items)
             return items
         deadline = self._clock() + max(0.0, timeout_s)
         while len(items) < max_items:
