@@ -6,8 +6,9 @@ Figures, one run, on the same archive file (default 200,000 transient reports an
 * baseline: read the lines and ``json.loads`` each one (the cheapest a Python
   reader of this archive can be);
 * poll + decode alone: archive source → native codec (full validation, localization
-  loading), in batches, without a store: the service's per-report edge, with its split
-  into poll and decode in µs per line;
+  loading), in batches, without a store, under the service loop's garbage-collector
+  setting (:func:`matcher.service.loop_gc`): the service's per-report edge, with its
+  split into poll and decode in µs per line;
 * intake: archive source → native codec (full validation, localization loading)
   → one SQLite transaction per batch (WAL, ``synchronous=FULL``: messages with raw
   bytes, events, transients, positions) → commit; into a fresh store;
@@ -68,6 +69,7 @@ def _baseline(path: Path) -> float:
 
 def _poll_decode(path: Path, batch: int) -> tuple[float, float, int]:
     """Seconds spent in ``poll`` and in decoding (as the service loop does both), and the lines read."""
+    from matcher.service import loop_gc
     from matcher.streams.codecs import NativeCodec
     from matcher.streams.intake import decode_item
     from matcher.streams.sources import ArchiveSource
@@ -75,7 +77,7 @@ def _poll_decode(path: Path, batch: int) -> tuple[float, float, int]:
     codec = NativeCodec()
     poll_s = decode_s = 0.0
     n = 0
-    with ArchiveSource("bench", path) as src:
+    with loop_gc(), ArchiveSource("bench", path) as src:
         while True:
             t0 = time.perf_counter()
             items = src.poll(batch)
