@@ -337,9 +337,9 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
     their ranges, no ``localization``. Every check of :func:`_transient` is made here too,
     only without building an error: whatever fails, is missing where required, or is not of
     the usual type makes this return None, and the caller runs :func:`_checked_message`,
-    which then gives the same message or the error with its exact text. (About a third of
-    the cost of the checker, which builds an object and makes a call per field.) The tests
-    hold both paths to the same results on a varied set of inputs.
+    which then gives the same message or the error with its exact text. (About half the
+    cost of the checker, which builds an object and makes a call per field.) The tests hold
+    both paths to the same results on a varied set of inputs.
     """
     tid = f.get("transient_id")
     klass = f.get("class")
