@@ -49,6 +49,9 @@ def test_every_bad_kind_is_quarantined_once_and_good_messages_are_unaffected(tmp
         "oversized message": _tr(transient_id="BAD-6", note="x" * 5000),
         "unconfigured class": _tr(transient_id="BAD-7", **{"class": "weather_balloon"}),
         "not UTF-8": b'{"schema":"matcher/1","type":"transient","transient_id":"\xff\xfe"}',
+        # Numbers Python reads but a float or an SQLite integer cannot hold (these once stopped the loop).
+        "integer beyond the float range": _tr(transient_id="BAD-8", ra_deg=10**400),
+        "revision beyond an SQLite integer": _gw(event_id="EV-BAD-7", revision=2**64),
     }
     mixed = []
     step = max(1, len(good) // (len(bad) + 1))
@@ -84,6 +87,8 @@ def test_every_bad_kind_is_quarantined_once_and_good_messages_are_unaffected(tmp
         assert "dec_deg" in reasons[bad["coordinates out of range"]]
         assert "weather_balloon" in reasons[bad["unconfigured class"]]
         assert "allow" in reasons[bad["URL outside the allow-list"]]
+        assert "ra_deg" in reasons[bad["integer beyond the float range"]]
+        assert "revision" in reasons[bad["revision beyond an SQLite integer"]]
         assert all(r.origin_where == str(archive.resolve()) and r.origin_offset for r in rows)
         with Store(clean.store_path) as cs:
             assert results_by_key(st) == results_by_key(cs)

@@ -22,6 +22,7 @@ __all__ = [
     "SCHEMA",
     "GW_STATES",
     "SOURCE_CLASSES",
+    "MAX_REVISION",
     "Localization",
     "GWAlert",
     "TransientReport",
@@ -32,6 +33,8 @@ __all__ = [
 SCHEMA = "matcher/1"
 GW_STATES = ("issued", "revised", "withdrawn")
 SOURCE_CLASSES = ("bns", "nsbh", "bbh", "terrestrial")
+#: The largest revision number taken (the store keeps revisions as SQLite integers).
+MAX_REVISION = 2**31 - 1
 
 
 @dataclass(frozen=True)
@@ -179,7 +182,10 @@ class _Checker:
             return None
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             self.fail(name, f"must be a number, got {_show(v)}")
-        v = float(v)
+        try:
+            v = float(v)
+        except OverflowError:  # an integer literal beyond the float range
+            self.fail(name, f"must be a number within the float range, got an integer of {v.bit_length()} bits")
         if not math.isfinite(v):
             self.fail(name, f"must be finite, got {v!r}")
         if lo is not None and (v <= lo if lo_open else v < lo):
@@ -275,8 +281,8 @@ def _gw_alert(f: Mapping[str, Any], codec: str, base_dir: str | None) -> GWAlert
     c = _Checker(f, codec, "event_id")
     event_id = c.string("event_id")
     rev = f.get("revision")
-    if isinstance(rev, bool) or not isinstance(rev, int) or rev < 0:
-        c.fail("revision", f"must be a non-negative integer, got {_show(rev)}")
+    if isinstance(rev, bool) or not isinstance(rev, int) or not 0 <= rev <= MAX_REVISION:
+        c.fail("revision", f"must be an integer from 0 to {MAX_REVISION}, got {_show(rev)}")
     state = f.get("state")
     if state not in GW_STATES:
         c.fail("state", f"must be one of {', '.join(GW_STATES)}, got {state!r}")
