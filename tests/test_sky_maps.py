@@ -281,3 +281,25 @@ def test_samples_follow_the_3d_posterior(blob3d, rng):
     sel = slice(0, 400)
     pit = [quad(conditional_pdf, 0, ri, args=(m_, s_, n_))[0] for ri, m_, s_, n_ in zip(r[sel], mu[sel], sig[sel], norm[sel])]
     assert stats.kstest(pit, "uniform").pvalue > 1e-3
+
+
+def test_direct_lookup_table_equals_binary_searches_per_cell():
+    # The order-8 lookup table is built by spreading each coarse pixel over its cells; the
+    # reference is the definition (a cell holds one pixel iff exactly one pixel starts in
+    # [the pixel containing the cell's start, the cell's end)), by numpy.searchsorted.
+    import numpy as np
+
+    from matcher.sky import random_skymap
+    from matcher.sky.skymap import _LOOKUP_ORDER
+
+    rng = np.random.default_rng(7)
+    for max_order, area in ((6, 3000.0), (8, 400.0), (10, 50.0), (11, 20.0)):
+        sm = random_skymap(rng, area90_deg2=area, max_order=max_order, pixel_prob=1e-4)
+        table, shift = sm._table
+        m = sm.max_order
+        c = min(m, _LOOKUP_ORDER)
+        cell_start = np.arange(12 * 4**c, dtype=np.int64) << (2 * (m - c))
+        lo = np.searchsorted(sm._starts, cell_start, side="right") - 1
+        hi = np.searchsorted(sm._starts, cell_start + (np.int64(1) << (2 * (m - c))), side="left")
+        assert shift == 2 * (m - c)
+        assert np.array_equal(table, np.where(hi - lo == 1, lo, -1)), max_order
