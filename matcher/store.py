@@ -604,23 +604,24 @@ class Transaction:
             status = item[4] if len(item) > 4 else "current"
             if status not in RESULT_STATUSES:
                 raise ValueError(f"status must be one of {', '.join(RESULT_STATUSES)}, got {status!r}")
-            if event_id not in states:
-                states[event_id] = self._event_state(event_id)
-            ev = states[event_id]
+            ev = states.get(event_id)
             if ev is None:
-                raise ValueError(f"result for unknown event {event_id!r}: store the alert first")
+                ev = self._event_state(event_id)
+                if ev is None:
+                    raise ValueError(f"result for unknown event {event_id!r}: store the alert first")
+                ev = states[event_id] = (*ev, _quote(event_id))
             if revision > ev[0]:
                 raise ValueError(f"result for {event_id} revision {revision}, newer than its stored revision {ev[0]}")
             if ev[1] == "withdrawn":
                 status = "withdrawn"
             elif revision < ev[0] and status == "current":
                 status = "superseded"
-            key = result_key(event_id, revision, transient_id)
+            key = f"{ev[2]}/{int(revision)}/{_quote(transient_id)}"  # result_key, the event's part quoted once
             if key in seen:
                 raise ValueError(f"result {key} given twice in one put_results call")
             seen.add(key)
-            rec = dict(record)
-            rec.update(key=key, event_id=event_id, revision=int(revision), transient_id=transient_id, status=status)
+            rec = {**record, "key": key, "event_id": event_id, "revision": int(revision),
+                   "transient_id": transient_id, "status": status}
             text, plain = _dumps_plain(rec)
             if not plain:  # the stored record is what its text says (numpy values unwrapped, NaN as null)
                 rec = json.loads(text)
