@@ -299,3 +299,25 @@ def test_bulk_put_results_equals_one_by_one(tmp_path):
     finally:
         for s in stores:
             s.close()
+
+
+def test_multi_row_inserts_equal_one_statement_per_row():
+    # _insert_rows packs rows into multi-row VALUES statements; sqlite3's executemany with one
+    # row per statement is the reference: same table, same rowids, same upsert outcome.
+    import sqlite3
+
+    from matcher.store import _insert_rows
+
+    for n in (0, 1, 49, 50, 51, 137, 1000):
+        rows = [(f"k{i % 300}", i, f"v{i}") for i in range(n)]  # repeated keys exercise the upsert
+        dbs = []
+        for packed in (False, True):
+            db = sqlite3.connect(":memory:")
+            db.execute("CREATE TABLE t (k TEXT PRIMARY KEY, n INTEGER, v TEXT, c INTEGER)")
+            tail = " ON CONFLICT(k) DO UPDATE SET n=excluded.n, v=excluded.v, c=c+1"
+            if packed:
+                _insert_rows(db, "INSERT INTO t VALUES", "(?,?,?,0)", rows, tail)
+            else:
+                db.executemany("INSERT INTO t VALUES (?,?,?,0)" + tail, rows)
+            dbs.append(db.execute("SELECT rowid, * FROM t ORDER BY rowid").fetchall())
+        assert dbs[0] == dbs[1], n
