@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import json
 import math
-import re
 import sys
 from typing import Any
 
@@ -27,14 +26,29 @@ __all__ = ["load_json", "check_finite", "check_size"]
 # at the first non-blank character, then a check that only blanks follow.
 _DECODER = json.JSONDecoder()
 # orjson parses the usual object about five times faster than json.loads and gives the same
-# values (floats correctly rounded: 1.5 million random literals compared equal, type and repr,
-# in tests/test_json_parsing.py's way), with one exception: an integer beyond 64 bits becomes a
-# float. So text with a run of 19 or more digits, which every such integer has, takes the
-# standard parser; so does whatever orjson refuses (NaN, 1e400, lone surrogates, bad syntax).
-_LONG_DIGITS = re.compile(rb"[0-9]{19}")
-# And text deep enough that Python's parser might hit the recursion limit (orjson goes to 1024
-# levels) takes it too, so that such text keeps its "nested too deeply" rejection.
-_FAST_MAX_OPEN = 200
+# values (floats correctly rounded: 1.5 million random literals compared equal in value, type and
+# repr; tests/test_json_parsing.py keeps a share of that), with two exceptions, both sent to the
+# standard parser after the fact: an integer beyond 64 bits becomes a float (always one of
+# magnitude >= 2**63, so any float that large is re-read), and orjson reads nesting up to 1024
+# levels where Python's parser may stop earlier (so anything deeper than _FAST_MAX_DEPTH is
+# re-read, and keeps its "nested too deeply" rejection). What orjson refuses (NaN, 1e400, lone
+# surrogates, bad syntax) goes to the standard parser too, which reads it or names the problem.
+_FAST_MAX_DEPTH = 200
+_BIG = 9.2e18  # just below 2**63
+
+
+def _plain(value, depth: int = 0) -> bool:
+    """No float of magnitude >= 2**63 and no deeper than _FAST_MAX_DEPTH (see above)."""
+    if depth > _FAST_MAX_DEPTH:
+        return False
+    for v in value.values() if type(value) is dict else value:
+        t = type(v)
+        if t is float:
+            if v >= _BIG or v <= -_BIG:
+                return False
+        elif (t is dict or t is list) and not _plain(v, depth + 1):
+            return False
+    return True
 
 
 def check_size(item: RawItem, codec: str, max_bytes: int) -> None:
@@ -55,11 +69,13 @@ def load_json(item: RawItem, codec: str, max_bytes: int) -> Any:
     check_size(item, codec, max_bytes)
     data = item.data
     if data[:1] == b"{" and data[-1:] == b"}":
-        if _LONG_DIGITS.search(data) is None and data.count(b"{") + data.count(b"[") <= _FAST_MAX_OPEN:
-            try:
-                return orjson.loads(data)
-            except orjson.JSONDecodeError:  # left to the standard parser, which reads or names it
-                pass
+        try:
+            value = orjson.loads(data)
+        except orjson.JSONDecodeError:  # left to the standard parser, which reads or names it
+            pass
+        else:
+            if _plain(value):
+                return value
         # The usual shape, one object and nothing around it, parsed straight away: what
         # json.loads does after its checks for a byte-order mark and blanks, which such
         # text cannot have. Whatever goes wrong here (not UTF-8, bad syntax, too deep,
