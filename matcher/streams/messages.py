@@ -352,31 +352,13 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
     if (type(tid) is not str or type(klass) is not str or len(tid) > 256 or len(klass) > 256
             or not tid.strip() or not klass.strip()):
         return None
-    ra = f.get("ra_deg")
-    if type(ra) is float:
-        if not 0.0 <= ra <= 360.0:
-            return None
-    elif type(ra) is int and 0 <= ra <= 360:
-        ra = float(ra)
-    else:
-        return None
-    dec = f.get("dec_deg")
-    if type(dec) is float:
-        if not -90.0 <= dec <= 90.0:
-            return None
-    elif type(dec) is int and -90 <= dec <= 90:
-        dec = float(dec)
-    else:
-        return None
+    ra = _fast_in(f.get("ra_deg"), 0.0, 360.0)
+    dec = _fast_in(f.get("dec_deg"), -90.0, 90.0)
     err = f.get("pos_err_deg")
     if err is not None:
-        if type(err) is float:
-            if not 0.0 <= err <= 90.0:
-                return None
-        elif type(err) is int and 0 <= err <= 90:
-            err = float(err)
-        else:
-            return None
+        err = _fast_in(err, 0.0, 90.0)
+    if ra is _UNUSUAL or dec is _UNUSUAL or err is _UNUSUAL:
+        return None
     t_iso = f.get("time")
     if type(t_iso) is not str:
         return None
@@ -396,12 +378,8 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
             return None
     z = f.get("redshift")
     if z is not None:
-        if type(z) is float:
-            if not 0.0 <= z <= 20.0:
-                return None
-        elif type(z) is int and 0 <= z <= 20:
-            z = float(z)
-        else:
+        z = _fast_in(z, 0.0, 20.0)
+        if z is _UNUSUAL:
             return None
     z_err, d, d_err = f.get("redshift_err"), f.get("distance_mpc"), f.get("distance_err_mpc")
     if z_err is not None or d is not None or d_err is not None:
@@ -422,6 +400,15 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
 
 
 _UNUSUAL = object()
+
+
+def _fast_in(v, lo: float, hi: float):
+    """A float (or int) in ``[lo, hi]`` as a float; anything else (None, bool, NaN, out of range) ``_UNUSUAL``."""
+    if type(v) is float:
+        return v if lo <= v <= hi else _UNUSUAL
+    if type(v) is int and lo <= v <= hi:
+        return float(v)
+    return _UNUSUAL
 
 
 def _fast_positive(v):
