@@ -8,6 +8,7 @@ the source's own bookkeeping.
 from __future__ import annotations
 
 import time
+from dataclasses import astuple
 
 import pytest
 from kafka import KafkaConsumer, TopicPartition
@@ -15,6 +16,7 @@ from kafka import KafkaConsumer, TopicPartition
 from kafka_broker import unique_topic
 from kafka_helpers import drain, produce, settle, source_options
 from matcher.streams.kafka_common import KafkaTransportError
+from matcher.streams.raw import Origin, RawItem
 from matcher.streams.sources.kafka import KafkaSource, external_lag, stream_name
 
 pytestmark = pytest.mark.kafka
@@ -67,6 +69,10 @@ def test_alerts_then_reports_with_origins_positions_and_explicit_commits(kafka_b
     want |= {(m.topic, m.partition, m.offset): b'{"report":%d}' % n for n, m in enumerate(r_meta)}
     assert got == want
     assert all(i.origin.kind == "kafka" and i.origin.source == "k" for i in items)
+    # Each item is the object the public constructors make (the source builds them a faster way).
+    assert items == [RawItem(i.data, Origin("k", "kafka", i.origin.where, i.origin.part, i.origin.offset), i.position,
+                             i.received_at, None, truncated=False, size=len(i.data)) for i in items]
+    assert [hash(i.origin) for i in items] == [hash(Origin(*astuple(i.origin))) for i in items]
     # Alerts carry their next offset as a store position; reports none (their offsets live in the group).
     for i in items:
         if i.origin.where == alerts:

@@ -488,6 +488,7 @@ class KafkaSource:
         mode = self.options.received_at
         by_message, by_arrival = mode == "message", mode == "arrival"
         name, max_bytes, inflight = self.name, self.max_bytes, self._inflight
+        make_item, make_origin = RawItem._read, Origin._of
         for tp, recs in records.items():
             if role == "reports" and tp not in owned:
                 # Revoked or lost during this poll: not handed out, not committed; the
@@ -514,8 +515,10 @@ class KafkaSource:
                 if t is None:
                     t = now if (by_arrival or r.timestamp is None or r.timestamp <= 0) else r.timestamp / 1000.0
                 off = r.offset
-                keep(RawItem(data, Origin(name, "kafka", topic, part, off),
-                             (stream, str(off + 1)) if alerts else None, t, None, truncated=truncated, size=size))
+                # RawItem._read / Origin._of: the same objects as the constructors make, without the
+                # frozen dataclasses' per-field setattr calls (kafka-python's values are bytes).
+                keep(make_item(data, make_origin(name, "kafka", topic, part, off),
+                               (stream, str(off + 1)) if alerts else None, t, None, truncated, size))
                 hand_out((off, r.leader_epoch if r.leader_epoch is not None else -1))
                 inflight[(topic, part, off)] = st
             if recs:
