@@ -105,7 +105,8 @@ class KafkaSink:
         self.kinds = None if options.kinds is None else tuple(options.kinds)
         self._producer = None
         self._futures: list[tuple[OutboxRow, Any]] = []
-        #: Counters for the dashboard and tests: ``sent`` (acknowledged), ``failed``, ``producers``.
+        #: Counters for the dashboard and tests: ``sent`` (acknowledged), ``failed``, ``producers``,
+        #: ``flushes`` (rounds of acknowledgements waited for).
         self.stats = collections.Counter()
         #: Seconds (wall clock, the caller's thread) in :meth:`write` (handing records to the
         #: producer) and in :meth:`flush` (waiting for the broker's acknowledgements).
@@ -199,6 +200,7 @@ class KafkaSink:
             return
         futures, self._futures = self._futures, []
         timeout_s = self.options.delivery_timeout_ms / 1000.0 + 5.0
+        self.stats["flushes"] += 1
         t0 = time.perf_counter()
         try:
             self._producer.flush(timeout=timeout_s)
