@@ -129,16 +129,14 @@ class ReportBatch:
     @classmethod
     def from_reports(cls, reports: Sequence) -> "ReportBatch":
         """Build from :class:`~matcher.streams.messages.TransientReport` messages (already validated)."""
-        def col(attr):
-            return np.array([np.nan if getattr(r, attr) is None else getattr(r, attr) for r in reports],
-                            dtype=np.float64)
-
+        # One pass over the reports; numpy turns None into NaN for a float array.
+        cols = np.array([(r.ra_deg, r.dec_deg, r.time, r.pos_err_deg, r.last_nondetection, r.redshift,
+                          r.redshift_err, r.distance_mpc, r.distance_err_mpc) for r in reports],
+                        dtype=np.float64).reshape(-1, 9).T.copy()
         return cls.from_arrays(
             [r.transient_id for r in reports], np.array([r.klass for r in reports], dtype=str),
-            col("ra_deg"), col("dec_deg"), col("time"), pos_err_deg=col("pos_err_deg"),
-            last_nondetection=col("last_nondetection"), redshift=col("redshift"),
-            redshift_err=col("redshift_err"), distance_mpc=col("distance_mpc"),
-            distance_err_mpc=col("distance_err_mpc"),
+            cols[0], cols[1], cols[2], pos_err_deg=cols[3], last_nondetection=cols[4], redshift=cols[5],
+            redshift_err=cols[6], distance_mpc=cols[7], distance_err_mpc=cols[8],
         )
 
     def take(self, index) -> "ReportBatch":
