@@ -210,3 +210,16 @@ def test_broker_process_exiting_at_start_raises_with_its_log():
         assert not broker.running
     finally:
         broker.close()
+
+
+def test_cluster_ids_never_look_like_an_option():
+    # StorageTool's parser reads an id starting with "-" as an option (a CI run failed so, once).
+    # The id is 16 bytes in URL-safe base64 without padding (the form KRaft expects, common practice).
+    import base64
+
+    from kafka_broker import new_cluster_id
+
+    for _ in range(5000):
+        cid = new_cluster_id()
+        assert not cid.startswith("-") and len(cid) == 22
+        assert len(base64.urlsafe_b64decode(cid + "==")) == 16
