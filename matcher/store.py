@@ -402,25 +402,7 @@ class Transaction:
         StoredMessage or None
             ``None`` when the same bytes from the same origin are already stored (a re-delivery).
         """
-        if isinstance(message, GWAlert):
-            kind, mkey = "gw_alert", f"{message.event_id}#{message.revision}"
-        elif isinstance(message, TransientReport):
-            kind, mkey = "transient", message.transient_id
-        else:
-            raise TypeError(f"expected a GWAlert or TransientReport, got {type(message).__name__}")
-        cur = self._db.execute(
-            "INSERT OR IGNORE INTO messages (dedup, origin_seq, source, origin_kind, origin_where, origin_part,"
-            " origin_offset, origin, codec, received_at, stored_at, kind, message_key, raw)"
-            " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
-            (item.dedup_key, _seq(item), *self._origin_columns(item), codec, item.received_at, self._now, kind, mkey,
-             item.data))
-        if cur.rowcount == 0:
-            return None
-        mid = cur.lastrowid
-        sha = self._put_localization(localization)
-        if kind == "gw_alert":
-            return self._apply_alert(mid, message, sha, item.received_at)
-        return self._apply_transient(mid, message, sha, item.received_at)
+        return self.add_messages([(item, codec, message, localization)])[0]
 
     def _apply_alert(self, mid: int, a: GWAlert, sha: str | None, received_at: float) -> StoredMessage:
         db = self._db
@@ -453,23 +435,6 @@ class Transaction:
         # held repr() here: a report re-delivered into one is seen as updated once, and re-scored to the
         # same records, which are then not written again).
         return values, orjson.dumps(values).decode()
-
-    def _apply_transient(self, mid: int, t: TransientReport, sha: str | None, received_at: float) -> StoredMessage:
-        values, content = self._transient_values(t, sha)
-        cur = self._db.execute("INSERT OR IGNORE INTO transients VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)",
-                               (t.transient_id, mid, *values, content, received_at))
-        if cur.rowcount == 1:
-            return StoredMessage(mid, "transient", "new")
-        cur = self._db.execute(
-            "UPDATE transients SET message_id=?, class=?, ra_deg=?, dec_deg=?, pos_err_deg=?, time=?, time_iso=?,"
-            " last_nondetection=?, redshift=?, redshift_err=?, distance_mpc=?, distance_err_mpc=?,"
-            " localization_sha=?, localization_ref=?, extra=?, content=?, reports=reports+1, received_at=?"
-            " WHERE transient_id=? AND content IS NOT ?",
-            (mid, *values, content, received_at, t.transient_id, content))
-        if cur.rowcount == 1:
-            return StoredMessage(mid, "transient", "updated")
-        self._db.execute("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", (t.transient_id,))
-        return StoredMessage(mid, "transient", "same")
 
     def add_messages(self, entries: Sequence[tuple[RawItem, str, Message, LoadedLocalization | None]]
                      ) -> list[StoredMessage | None]:
