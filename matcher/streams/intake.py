@@ -14,6 +14,7 @@ from dataclasses import dataclass
 from typing import Callable
 
 from matcher.errors import MessageError, SkyMapError
+from matcher.frozen import build_frozen
 from matcher.streams.codecs.base import Codec
 from matcher.streams.localization import LoadedLocalization, LocalizationLimits, load_localization
 from matcher.streams.messages import Message
@@ -69,11 +70,9 @@ def decode_item(item: RawItem, codec: Codec, limits: LocalizationLimits = Locali
         return Rejected(item, codec.name, str(exc), exc.field)
     loc = getattr(message, "localization", None)
     if loc is None:
-        # Accepted(item, codec.name, message), the same object built without the generated
-        # __init__ (an object.__setattr__ call per field): this is the result of almost every item.
-        accepted = object.__new__(Accepted)
-        accepted.__dict__.update(item=item, codec=codec.name, message=message, localization=None, reason=None)
-        return accepted
+        # Accepted(item, codec.name, message): the result of almost every item.
+        return build_frozen(Accepted, {"item": item, "codec": codec.name, "message": message,
+                                       "localization": None, "reason": None})
     try:
         loaded = load_localization(loc, limits, opener=opener)
     except SkyMapError as exc:

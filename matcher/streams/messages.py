@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from matcher.errors import MessageError
+from matcher.frozen import build_frozen
 from matcher.timeconv import iso_to_gps
 
 __all__ = [
@@ -390,13 +391,11 @@ def _fast_transient(f: dict, base_dir: str | None) -> TransientReport | None:
     if f.get("localization") is not None:
         return None
     extra = {k: v for k, v in f.items() if k not in _TR_FIELDS}
-    # TransientReport(tid, klass, ...), the same object built without the generated __init__ of a
-    # frozen dataclass (an object.__setattr__ call per field, 14 here): its fields in a __dict__ of its own.
-    report = object.__new__(TransientReport)
-    report.__dict__.update(transient_id=tid, klass=klass, ra_deg=ra, dec_deg=dec, time=t, time_iso=t_iso,
-                           pos_err_deg=err, last_nondetection=lnd, redshift=z, redshift_err=z_err, distance_mpc=d,
-                           distance_err_mpc=d_err, localization=None, extra=extra)
-    return report
+    # TransientReport(tid, klass, ...) without the generated __init__ (14 fields).
+    return build_frozen(TransientReport, {
+        "transient_id": tid, "klass": klass, "ra_deg": ra, "dec_deg": dec, "time": t, "time_iso": t_iso,
+        "pos_err_deg": err, "last_nondetection": lnd, "redshift": z, "redshift_err": z_err, "distance_mpc": d,
+        "distance_err_mpc": d_err, "localization": None, "extra": extra})
 
 
 _UNUSUAL = object()

@@ -14,6 +14,8 @@ import hashlib
 import time
 from dataclasses import dataclass
 
+from matcher.frozen import build_frozen
+
 __all__ = ["Origin", "RawItem", "dedup_key", "positions_of"]
 
 
@@ -49,9 +51,7 @@ class Origin:
         ``__init__`` of a frozen dataclass, which pays an ``object.__setattr__`` call per
         field; the instance keeps its fields in a ``__dict__`` of its own.
         """
-        origin = object.__new__(cls)
-        origin.__dict__.update(source=source, kind=kind, where=where, part=part, offset=offset)
-        return origin
+        return build_frozen(cls, {"source": source, "kind": kind, "where": where, "part": part, "offset": offset})
 
     def __str__(self) -> str:
         if self.kind == "archive" and self.offset is not None:
@@ -113,10 +113,8 @@ class RawItem:
         The same object, built as :meth:`Origin._of` builds its own (``__post_init__``
         would change nothing here).
         """
-        item = object.__new__(cls)
-        item.__dict__.update(data=data, origin=origin, position=position, received_at=received_at,
-                             base_dir=base_dir, truncated=truncated, size=size)
-        return item
+        return build_frozen(cls, {"data": data, "origin": origin, "position": position, "received_at": received_at,
+                                  "base_dir": base_dir, "truncated": truncated, "size": size})
 
     @classmethod
     def from_bytes(cls, data: bytes, *, base_dir: str | None = None, name: str = "<bytes>",
