@@ -16,6 +16,10 @@ Nothing reaches a sink before the store has committed it, and nothing is finishe
 the source before that either: a crash anywhere re-delivers at most the last batch,
 which the store recognises (same bytes, same origin) or which was rolled back.
 
+With one source that allows it (``poll_ahead``: archives, inboxes) :meth:`Service.run`
+keeps two batches in flight: the COMMIT of batch N runs on the store's helper thread
+while this thread polls and decodes batch N+1; steps 4–6 of N follow once it is durable.
+
 The loop knows sources, codecs and sinks only through their protocols and registries
 (:mod:`matcher.streams.sources`, :mod:`matcher.streams.codecs`,
 :mod:`matcher.streams.sinks`): a Kafka source kind or sink kind registered there is
@@ -201,6 +205,16 @@ def open_catalog(settings: CatalogSettings):
 
 
 @dataclass
+class _Batch:
+    """A polled, decoded batch on its way through the loop."""
+
+    source: Source
+    items: list
+    decoded: list
+    stats: ApplyStats | None = None
+
+
+@dataclass
 class ServiceStats:
     """Running totals of a service, and seconds spent in each step of the loop."""
 
@@ -310,6 +324,14 @@ class Service:
             live = [s for s in self.sources if not s.finished] or self.sources
             source = live[self._next % len(live)]
             self._next += 1
+        batch = self._take(source, timeout_s)
+        if batch is None:
+            return None
+        self._store_batch(batch, later=False)
+        return self._finish(batch)
+
+    def _take(self, source: Source, timeout_s: float | None) -> _Batch | None:
+        """Steps 1 and 2: poll and decode (no store access)."""
         svc = self.config.service
         sec = self.stats.seconds
         t0 = time.perf_counter()
@@ -320,26 +342,43 @@ class Service:
             return None
         codec = self._codecs[source.name]
         decoded = self.matcher.check([decode_item(it, codec, self._limits) for it in items])  # 2. decode
+        sec["decode"] += time.perf_counter() - t1
+        return _Batch(source, items, decoded)
+
+    def _store_batch(self, batch: _Batch, *, later: bool) -> None:
+        """Step 3: one transaction for the whole batch (with ``later``, its COMMIT on the helper thread)."""
         t2 = time.perf_counter()
-        sec["decode"] += t2 - t1
+        opened = self.store.transaction_committed_later() if later else self.store.transaction()
         try:
-            with self.store.transaction() as tx:  # 3. store: one transaction for the whole batch
-                stats = self.matcher.apply(tx, self.store, decoded)
-                tx.set_positions(source.name, positions_of(items))
+            with opened as tx:
+                batch.stats = self.matcher.apply(tx, self.store, batch.decoded)
+                tx.set_positions(batch.source.name, positions_of(batch.items))
         except BaseException:
             # The transaction rolled back: the in-memory state may hold part of the batch.
             self.matcher.rebuild(self.store)
             raise
+        self.stats.seconds["store"] += time.perf_counter() - t2
+
+    def _finish(self, batch: _Batch) -> ApplyStats:
+        """Steps 4 to 6, once the batch's transaction is durable."""
+        sec = self.stats.seconds
         t3 = time.perf_counter()
-        sec["store"] += t3 - t2
-        source.commit(decoded)  # 4. commit the source, only now
+        try:
+            self.store.wait_commit()
+        except BaseException:
+            self.matcher.rebuild(self.store)  # the commit failed and was rolled back
+            raise
         t4 = time.perf_counter()
-        sec["commit"] += t4 - t3
-        self.publish(tolerant=True)  # 5. publish the outbox (a sink that is away retries next batch)
+        sec["store"] += t4 - t3
+        stats = batch.stats
+        batch.source.commit(batch.decoded)  # 4. commit the source, only now
         t5 = time.perf_counter()
-        sec["publish"] += t5 - t4
+        sec["commit"] += t5 - t4
+        self.publish(tolerant=True)  # 5. publish the outbox (a sink that is away retries next batch)
+        t6 = time.perf_counter()
+        sec["publish"] += t6 - t5
         self._write_reports(stats)  # 6. reports of events that changed
-        sec["reports"] += time.perf_counter() - t5
+        sec["reports"] += time.perf_counter() - t6
         self.stats.batches += 1
         self.stats.totals.add(stats)
         now = time.monotonic()
@@ -354,10 +393,55 @@ class Service:
     def run(self, *, until_finished: bool = False, max_batches: int | None = None) -> ServiceStats:
         """Loop until stopped (or, with ``until_finished``, until every source is finished).
 
-        The garbage collector runs less often meanwhile (:func:`loop_gc`).
+        The garbage collector runs less often meanwhile (:func:`loop_gc`). With a single
+        source that allows it (``poll_ahead``), a batch's commit overlaps the next batch's
+        poll and decode (:meth:`_run_overlapped`).
         """
         with loop_gc():
+            if len(self.sources) == 1 and getattr(self.sources[0], "poll_ahead", False):
+                return self._run_overlapped(self.sources[0], until_finished, max_batches)
             return self._run(until_finished, max_batches)
+
+    def _run_overlapped(self, source: Source, until_finished: bool, max_batches: int | None) -> ServiceStats:
+        """The loop for one source, two batches in flight.
+
+        While the store commits batch N on its helper thread (writing pages and waiting for the
+        disk, without Python's lock), this thread polls and decodes batch N+1; then it finishes
+        N (source commit, publish, reports) and stores N+1. The order of what becomes durable,
+        what the source is told and what is published is the same as in :meth:`step`; only the
+        poll of N+1 comes before the source hears of N, which a ``poll_ahead`` source allows
+        (its position lives in the store, or it tracks items in flight). A batch polled when a
+        stop is requested is still stored and finished: nothing read is dropped.
+        """
+        done = 0
+        pending: _Batch | None = None
+        try:
+            while True:
+                in_flight = 1 if pending is not None else 0
+                more = (not self._stop.is_set() and not (until_finished and source.finished)
+                        and (max_batches is None or done + in_flight < max_batches))
+                nxt = self._take(source, None) if more else None
+                if pending is not None:
+                    batch, pending = pending, None
+                    self._finish(batch)
+                    done += 1
+                if nxt is None:
+                    if not more:
+                        break
+                    if self.on_batch is not None:
+                        self.on_batch(self, ApplyStats())
+                    continue
+                self._store_batch(nxt, later=True)
+                pending = nxt
+        except Exception:
+            if pending is not None:  # its commit is under way: finish it (it is the source's and sinks' due)
+                self._finish(pending)
+            raise
+        except BaseException:  # an interrupt: only let the commit under way end (nothing is acknowledged)
+            if pending is not None:
+                self.store.wait_commit()
+            raise
+        return self.stats
 
     def _run(self, until_finished: bool, max_batches: int | None) -> ServiceStats:
         done = 0

@@ -92,6 +92,8 @@ class ArchiveSource:
         The archive cannot be opened.
     """
 
+    poll_ahead = True  # its position lives in the store: the next batch may be read before this one is committed
+
     kind = "archive"
 
     def __init__(self, name: str, path, *, speed: float | None = None, max_bytes: int = 16 * 1024 * 1024,

@@ -49,6 +49,10 @@ class Source(Protocol):
     name : str
         The configured name (``sources.NAME``); positions are stored under it.
     kind : str
+    poll_ahead : bool, optional
+        True when the next batch may be polled before :meth:`commit` of the last one (its
+        position lives in the store, or it keeps the items in flight out of later polls); the
+        service then overlaps a batch's store commit with the next poll. Absent means False.
     """
 
     name: str

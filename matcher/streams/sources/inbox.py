@@ -81,6 +81,8 @@ class InboxSource:
         Larger files are read only up to this size plus one byte and rejected by the codec.
     """
 
+    poll_ahead = True  # files in flight stay out of later polls until commit() moves them
+
     kind = "inbox"
 
     def __init__(self, name: str, path, *, pattern: str = "*.json", done_dir=None, rejected_dir=None,
