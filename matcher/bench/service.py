@@ -35,7 +35,8 @@ def register(sub) -> None:
     p = sub.add_parser("service", help="replay through the whole service loop vs json.loads of the same archive")
     p.add_argument("--reports", type=int, default=200_000, help="transient reports (default 200,000)")
     p.add_argument("--events", type=int, default=20, help="active GW events (default 20)")
-    p.add_argument("--batch", type=int, default=2000, help="items per store transaction (default 2000)")
+    p.add_argument("--batch", type=int, default=None,
+                   help="items per store transaction (default: the embedded default configuration's)")
     p.add_argument("--seed", type=int, default=2027)
     p.add_argument("--workdir", help="folder for the archive, store and output (default: a temporary folder)")
     p.add_argument("--profile", metavar="FILE", help="write a cProfile of the service run to FILE")
@@ -114,6 +115,10 @@ def run(args) -> int:
         folder = Path(args.workdir) if args.workdir else Path(tmp)
         folder.mkdir(parents=True, exist_ok=True)
         n = args.reports
+        if args.batch is None:
+            from matcher.replay import default_config
+
+            args.batch = default_config().service.batch_size
         print(f"service benchmark: {n:,} transient reports against {args.events} active GW events, batch {args.batch}")
         t = time.perf_counter()
         path = write_archive(folder, n, args.events, args.seed)
