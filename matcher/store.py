@@ -56,7 +56,7 @@ import orjson
 from matcher.errors import InputError
 from matcher.streams.localization import LoadedLocalization
 from matcher.streams.messages import GWAlert, Localization, Message, TransientReport
-from matcher.streams.raw import RawItem
+from matcher.streams.raw import RawItem, dedup_key
 
 __all__ = [
     "Store",
@@ -319,11 +319,6 @@ def _dumps(value: Any) -> str:
     return _dumps_plain(value)[0]
 
 
-def _seq(item: RawItem) -> int:
-    """The leading column of the dedup index: the origin's line or offset, -1 for a whole file."""
-    return -1 if item.origin.offset is None else int(item.origin.offset)
-
-
 def _chunks(seq, size: int = 500):
     for i in range(0, len(seq), size):
         yield seq[i:i + size]
@@ -432,9 +427,10 @@ class Transaction:
 
     @staticmethod
     def _transient_values(t: TransientReport, sha: str | None):
+        loc, extra = t.localization, t.extra
         values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
-                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
-                  _dumps(t.extra) if t.extra else "{}")
+                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha,
+                  None if loc is None else _loc_ref(loc), _dumps(extra) if extra else "{}")
         # What "the same report" means: every stored field equal. orjson writes floats in their shortest
         # round-trip form and strings as they are, so equal texts mean equal fields (stores written before
         # held repr() here: a report re-delivered into one is seen as updated once, and re-scored to the
@@ -455,65 +451,68 @@ class Transaction:
             One per entry, in order (``None``: already stored, or repeated earlier in the batch).
         """
         db = self._db
+        now = self._now
         out: list[StoredMessage | None] = [None] * len(entries)
-        keys = [e[0].dedup_key for e in entries]
-        seqs = [_seq(e[0]) for e in entries]
+        keys, seqs, pairs, tids = [], [], [], set()
+        for item, _codec, message, _loc in entries:
+            o = item.origin
+            key = dedup_key(item.data, o)  # item.dedup_key
+            seq = -1 if o.offset is None else int(o.offset)  # the dedup index's leading column (-1: a whole file)
+            keys.append(key)
+            seqs.append(seq)
+            pairs += (seq, key)
+            if isinstance(message, TransientReport):
+                tids.add(message.transient_id)
         existing: set[bytes] = set()
-        pairs = [v for pair in zip(seqs, keys) for v in pair]
         for chunk in _chunks(pairs, 500):
             existing.update(r[0] for r in db.execute(  # a join, so that SQLite searches the index per pair
                 f"WITH v(s, d) AS (VALUES {','.join(['(?,?)'] * (len(chunk) // 2))})"
                 " SELECT m.dedup FROM v JOIN messages m ON m.origin_seq = v.s AND m.dedup = v.d", chunk))
+        known: dict[str, str] = {}
+        for chunk in _chunks(list(tids)):
+            known.update(db.execute(f"SELECT transient_id, content FROM transients WHERE transient_id IN"
+                                    f" ({','.join('?' * len(chunk))})", chunk))
         next_id = db.execute("SELECT COALESCE(MAX(id), 0) FROM messages").fetchone()[0] + 1
-        rows, fresh = [], []
-        for i, (item, codec, message, _loc) in enumerate(entries):
+        # One pass: the message rows, and what each new report does to its transient (the rows are
+        # written below in the order the foreign keys need: messages, then alerts and transients).
+        rows, alerts, inserts, updates, same = [], [], [], [], []
+        for i, (item, codec, message, loc) in enumerate(entries):
             key = keys[i]
             if key in existing:
                 continue
             existing.add(key)
-            if isinstance(message, GWAlert):
-                kind, mkey = "gw_alert", f"{message.event_id}#{message.revision}"
-            elif isinstance(message, TransientReport):
-                kind, mkey = "transient", message.transient_id
+            mid = next_id
+            next_id += 1
+            o = item.origin
+            sha = None if loc is None else self._put_localization(loc)
+            if isinstance(message, TransientReport):
+                tid = message.transient_id
+                rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
+                             item.received_at, now, "transient", tid, item.data))
+                values, content = self._transient_values(message, sha)
+                prev = known.get(tid)
+                if prev is None:
+                    inserts.append((tid, mid, *values, content, item.received_at))
+                    effect = "new"
+                elif prev != content:
+                    updates.append((mid, *values, content, item.received_at, tid))
+                    effect = "updated"
+                else:
+                    same.append((tid,))
+                    effect = "same"
+                known[tid] = content
+                out[i] = StoredMessage(mid, "transient", effect)
+            elif isinstance(message, GWAlert):
+                rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
+                             item.received_at, now, "gw_alert", f"{message.event_id}#{message.revision}", item.data))
+                alerts.append((i, mid, message, sha, item.received_at))
             else:
                 raise TypeError(f"expected a GWAlert or TransientReport, got {type(message).__name__}")
-            rows.append((next_id, key, seqs[i], *self._origin_columns(item), codec, item.received_at, self._now, kind,
-                         mkey, item.data))
-            fresh.append((i, next_id))
-            next_id += 1
         _insert_rows(db, "INSERT INTO messages (id, dedup, origin_seq, source, origin_kind, origin_where, origin_part,"
                          " origin_offset, origin, codec, received_at, stored_at, kind, message_key, raw) VALUES",
                      "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", rows)
-        reports = []
-        for i, mid in fresh:
-            item, _codec, message, loc = entries[i]
-            sha = self._put_localization(loc)
-            if isinstance(message, GWAlert):
-                out[i] = self._apply_alert(mid, message, sha, item.received_at)
-            else:
-                reports.append((i, mid, message, sha, item.received_at))
-        if not reports:
-            return out
-        tids = list({r[2].transient_id for r in reports})
-        known: dict[str, str] = {}
-        for chunk in _chunks(tids):
-            known.update(db.execute(f"SELECT transient_id, content FROM transients WHERE transient_id IN"
-                                    f" ({','.join('?' * len(chunk))})", chunk))
-        inserts, updates, same = [], [], []
-        for i, mid, t, sha, received_at in reports:
-            values, content = self._transient_values(t, sha)
-            prev = known.get(t.transient_id)
-            if prev is None:
-                inserts.append((t.transient_id, mid, *values, content, received_at))
-                effect = "new"
-            elif prev != content:
-                updates.append((mid, *values, content, received_at, t.transient_id))
-                effect = "updated"
-            else:
-                same.append((t.transient_id,))
-                effect = "same"
-            known[t.transient_id] = content
-            out[i] = StoredMessage(mid, "transient", effect)
+        for i, mid, alert, sha, received_at in alerts:
+            out[i] = self._apply_alert(mid, alert, sha, received_at)
         # Inserts first: a report inserted and then updated within the batch keeps its order.
         _insert_rows(db, "INSERT INTO transients VALUES", "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)", inserts)
         db.executemany(
