@@ -42,6 +42,7 @@ import json
 import math
 import os
 import re
+import queue
 import sqlite3
 import threading
 import time
@@ -49,7 +50,7 @@ import urllib.parse
 from contextlib import contextmanager
 from dataclasses import dataclass
 from itertools import chain
-from typing import Any, Iterator, Mapping, NamedTuple, Sequence
+from typing import Any, Callable, Iterator, Mapping, NamedTuple, Sequence
 
 import orjson
 
@@ -78,6 +79,8 @@ SCHEMA_VERSION = 1
 # them once, instead of spilling the default 2 MiB to the WAL mid-batch: ~5 % more reports/s
 # in ``matcher bench service`` here.
 CACHE_KIB = 65536
+# Rows a statement for bulk writes on the writer thread (see _insert_rows).
+BIG_ROWS = 1000
 RESULT_STATUSES = ("current", "superseded", "withdrawn")
 
 
@@ -324,22 +327,32 @@ def _chunks(seq, size: int = 500):
         yield seq[i:i + size]
 
 
-def _insert_rows(db, head: str, row: str, rows: Sequence[Sequence], tail: str = "") -> None:
+def _insert_rows(db, head: str, row: str, rows: Sequence[Sequence], tail: str = "", *, big: bool = False) -> None:
     """``db.executemany(f"{head} {row}{tail}", rows)``, several rows to a statement.
 
     The same rows in the same order (a multi-row ``VALUES``; an upsert ``tail`` applies to
     each row), with fewer statement steps: 4.7 → 3.9 µs a row for the transients table,
-    measured here. At most 999 parameters a statement (SQLite's old default limit).
+    measured here; fifty rows a statement (at most 999 parameters, SQLite's old default
+    limit). With ``big`` (the writer thread), up to ``BIG_ROWS`` rows a statement within the
+    connection's limit, then fifty, then one: each statement is one step SQLite takes
+    without Python's lock, so the thread needs that lock back less often.
     """
     if not rows:
         return
-    per = max(1, min(50, 999 // max(1, row.count("?"))))
-    full = len(rows) - len(rows) % per
-    if full:
-        stmt = f"{head} {','.join([row] * per)}{tail}"
-        db.executemany(stmt, [list(chain.from_iterable(rows[i:i + per])) for i in range(0, full, per)])
-    if full < len(rows):
-        db.executemany(f"{head} {row}{tail}", rows[full:])
+    width = max(1, row.count("?"))
+    sizes = [max(1, min(50, 999 // width)), 1]
+    if big:
+        sizes.insert(0, max(1, min(BIG_ROWS, db.getlimit(sqlite3.SQLITE_LIMIT_VARIABLE_NUMBER) // width)))
+    start = 0
+    for per in sizes:
+        full = start + (len(rows) - start) // per * per
+        if full > start:
+            if per == 1:
+                db.executemany(f"{head} {row}{tail}", rows[start:full])
+            else:
+                stmt = f"{head} {','.join([row] * per)}{tail}"
+                db.executemany(stmt, [list(chain.from_iterable(rows[i:i + per])) for i in range(start, full, per)])
+        start = full
 
 
 def _loc_ref(loc: Localization | None) -> str | None:
@@ -368,8 +381,21 @@ class Transaction:
 
     def __init__(self, store: Store):
         self._store = store
-        self._db = store._db
         self._now = time.time()
+
+    @property
+    def _db(self) -> sqlite3.Connection:
+        return self._store._db  # after the writer thread has run what this transaction handed it
+
+    def _write_rows(self, head: str, row: str, rows: Sequence[Sequence], tail: str = "") -> None:
+        """:func:`_insert_rows` on the writer thread (bulk rows of this transaction; nothing read back)."""
+        if rows:
+            self._store._defer(lambda conn: _insert_rows(conn, head, row, rows, tail, big=True))
+
+    def _write_many(self, sql: str, rows: Sequence[Sequence]) -> None:
+        """``executemany(sql, rows)`` on the writer thread (nothing read back)."""
+        if rows:
+            self._store._defer(lambda conn: conn.executemany(sql, rows))
 
     # ----------------------------------------------------------------- input
     def _origin_columns(self, item: RawItem):
@@ -508,19 +534,19 @@ class Transaction:
                 alerts.append((i, mid, message, sha, item.received_at))
             else:
                 raise TypeError(f"expected a GWAlert or TransientReport, got {type(message).__name__}")
-        _insert_rows(db, "INSERT INTO messages (id, dedup, origin_seq, source, origin_kind, origin_where, origin_part,"
-                         " origin_offset, origin, codec, received_at, stored_at, kind, message_key, raw) VALUES",
-                     "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", rows)
+        self._write_rows("INSERT INTO messages (id, dedup, origin_seq, source, origin_kind, origin_where,"
+                         " origin_part, origin_offset, origin, codec, received_at, stored_at, kind, message_key, raw)"
+                         " VALUES", "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)", rows)
         for i, mid, alert, sha, received_at in alerts:
             out[i] = self._apply_alert(mid, alert, sha, received_at)
         # Inserts first: a report inserted and then updated within the batch keeps its order.
-        _insert_rows(db, "INSERT INTO transients VALUES", "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)", inserts)
-        db.executemany(
+        self._write_rows("INSERT INTO transients VALUES", "(?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,1,?)", inserts)
+        self._write_many(
             "UPDATE transients SET message_id=?, class=?, ra_deg=?, dec_deg=?, pos_err_deg=?, time=?, time_iso=?,"
             " last_nondetection=?, redshift=?, redshift_err=?, distance_mpc=?, distance_err_mpc=?,"
             " localization_sha=?, localization_ref=?, extra=?, content=?, reports=reports+1, received_at=?"
             " WHERE transient_id=?", updates)
-        db.executemany("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", same)
+        self._write_many("UPDATE transients SET reports = reports + 1 WHERE transient_id = ?", same)
         return out
 
     def quarantine(self, item: RawItem, codec: str, reason: str, field: str | None = None) -> bool:
@@ -672,33 +698,68 @@ class Transaction:
     # ------------------------------------------------------------- positions
     def set_positions(self, source: str, positions: Mapping[str, str]) -> None:
         """Record where ``source`` resumes, per stream (stored with the batch it belongs to)."""
-        self._db.executemany(
+        self._write_many(
             "INSERT INTO positions VALUES (?,?,?,?) ON CONFLICT(source, stream) DO UPDATE SET"
             " token=excluded.token, updated_at=excluded.updated_at",
             [(source, stream, str(token), self._now) for stream, token in positions.items()])
 
 
-class PendingCommit:
-    """A ``COMMIT`` running on its own thread (see :meth:`Store.transaction_committed_later`)."""
+class _Writer:
+    """The store's helper thread: runs deferred writes and commits in order on the connection.
 
-    def __init__(self):
+    Whoever submits work does not touch the connection again until :meth:`drain` returned
+    (:attr:`Store._db` drains first), so the connection is never used by two threads at once.
+    After a job fails, later jobs are skipped until the failure was collected by :meth:`drain`.
+    """
+
+    def __init__(self, conn: sqlite3.Connection):
+        self._conn = conn
+        self._jobs: queue.SimpleQueue = queue.SimpleQueue()
+        self._done = threading.Condition()
+        self.pending = 0  # jobs submitted and not finished
+        self.unsettled = False  # work submitted since the last drain
         self._error: BaseException | None = None
         self._thread: threading.Thread | None = None
 
-    def start(self, db: sqlite3.Connection) -> None:
-        def run():
+    def submit(self, job: Callable[[sqlite3.Connection], Any]) -> None:
+        if self._thread is None:
+            self._thread = threading.Thread(target=self._run, name="matcher-store-writer", daemon=True)
+            self._thread.start()
+        with self._done:
+            self.pending += 1
+            self.unsettled = True
+        self._jobs.put(job)
+
+    def _run(self) -> None:
+        while True:
+            job = self._jobs.get()
+            if job is None:
+                return
             try:
-                db.execute("COMMIT")
-            except BaseException as exc:  # handed to the waiting thread
+                if self._error is None:
+                    job(self._conn)
+            except BaseException as exc:  # handed to the thread that drains
                 self._error = exc
+            finally:
+                with self._done:
+                    self.pending -= 1
+                    if not self.pending:
+                        self._done.notify_all()
 
-        self._thread = threading.Thread(target=run, name="matcher-store-commit", daemon=True)
-        self._thread.start()
+    def drain(self) -> BaseException | None:
+        """Wait until every submitted job has run; return the first failure since the last drain."""
+        with self._done:
+            while self.pending:
+                self._done.wait()
+            self.unsettled = False
+        error, self._error = self._error, None
+        return error
 
-    def wait(self) -> None:
-        self._thread.join()
-        if self._error is not None:
-            raise self._error
+    def close(self) -> None:
+        if self._thread is not None:
+            self._jobs.put(None)
+            self._thread.join()
+            self._thread = None
 
 
 class Store:
@@ -732,7 +793,8 @@ class Store:
         except (OSError, sqlite3.Error) as exc:
             raise StoreError(f"store {self.path}: cannot open: {exc}") from None
         self._in_tx = False
-        self._committing: PendingCommit | None = None
+        self._committing = False  # a COMMIT was handed to the writer
+        self._writer = _Writer(self._conn)
         try:
             mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
             if mode.lower() != "wal":
@@ -762,16 +824,36 @@ class Store:
 
     @property
     def _db(self) -> sqlite3.Connection:
-        """The connection, once a commit running on the helper thread has finished."""
-        if self._committing is not None:
-            self.wait_commit()
+        """The connection, once the writer thread has run everything handed to it."""
+        if self._writer.unsettled or self._committing:
+            self._settle()
         return self._conn
+
+    def _defer(self, job: Callable[[sqlite3.Connection], Any]) -> None:
+        """Run ``job(connection)`` on the writer thread, after what was handed to it before."""
+        self._writer.submit(job)
+
+    def _settle(self) -> None:
+        """Wait for the writer; a failure there rolls the transaction back and raises StoreError."""
+        error = self._writer.drain()
+        committing, self._committing = self._committing, False
+        if committing:
+            self._in_tx = False
+        if error is None:
+            return
+        if self._conn.in_transaction:
+            self._conn.execute("ROLLBACK")
+        what = "commit" if committing else "write"
+        if isinstance(error, sqlite3.Error):
+            raise StoreError(f"store {self.path}: {what} failed, the batch was rolled back: {error}") from error
+        raise error
 
     # ----------------------------------------------------------- lifecycle
     def close(self) -> None:
         try:
-            self.wait_commit()
+            self._settle()
         finally:
+            self._writer.close()
             self._conn.close()
 
     def __enter__(self) -> Store:
@@ -786,61 +868,56 @@ class Store:
         with self._open_transaction() as tx:
             yield tx
         try:
+            self._settle()
             self._conn.execute("COMMIT")
         finally:
             self._in_tx = False
 
     @contextmanager
     def transaction_committed_later(self) -> Iterator[Transaction]:
-        """Like :meth:`transaction`, but the ``COMMIT`` runs on a helper thread after the block.
+        """Like :meth:`transaction`, but the ``COMMIT`` runs on the writer thread after the block.
 
-        The block's statements run here; if it raises, the transaction is rolled back here. The
-        commit (SQLite writes the batch's pages and waits for the disk, without holding Python's
-        lock) then overlaps whatever the caller does next that does not touch the store (reading
-        and decoding the next batch). :meth:`wait_commit` waits for it and raises its error,
-        after rolling back; every other use of the store waits for it first. Nothing is durable,
-        and nothing may be acknowledged to a source or sink, before :meth:`wait_commit` returned.
+        The block's reads run here; some of its bulk writes already run on the writer thread
+        (:meth:`Transaction` defers them), and if the block raises, the transaction is rolled
+        back. The commit (SQLite writes the batch's pages and waits for the disk, mostly without
+        holding Python's lock) then overlaps whatever the caller does next that does not touch
+        the store (reading and decoding the next batch). :meth:`wait_commit` waits for it and
+        raises its error, after rolling back; every other use of the store waits for it first.
+        Nothing is durable, and nothing may be acknowledged to a source or sink, before
+        :meth:`wait_commit` returned.
         """
         with self._open_transaction() as tx:
             yield tx
-        pending = PendingCommit()
-        pending.start(self._conn)
-        self._committing = pending
+        self._committing = True
+        self._defer(lambda conn: conn.execute("COMMIT"))
 
     @contextmanager
     def _open_transaction(self) -> Iterator[Transaction]:
-        self.wait_commit()
-        if self._in_tx:
+        if self._in_tx and not self._committing:
             raise RuntimeError("store transactions do not nest")
         self._db.execute("BEGIN IMMEDIATE")
         self._in_tx = True
         try:
             yield Transaction(self)
         except BaseException:
-            self._db.execute("ROLLBACK")
-            self._in_tx = False
+            try:
+                self._writer.drain()  # its failure, if any, is part of what is being rolled back
+                if self._conn.in_transaction:
+                    self._conn.execute("ROLLBACK")
+            finally:
+                self._in_tx = False
             raise
 
     def wait_commit(self) -> None:
-        """Wait for a commit started by :meth:`transaction_committed_later`; raise its error.
+        """Wait for a commit started by :meth:`transaction_committed_later` (and every write before it).
 
         Raises
         ------
         StoreError
-            The commit failed; the transaction was rolled back (none of its writes are stored).
+            The commit or a write before it failed; the transaction was rolled back (none of
+            its writes are stored).
         """
-        pending = self._committing
-        if pending is None:
-            return
-        self._committing = None
-        try:
-            pending.wait()
-        except sqlite3.Error as exc:
-            if self._conn.in_transaction:
-                self._conn.execute("ROLLBACK")
-            raise StoreError(f"store {self.path}: commit failed, the batch was rolled back: {exc}") from exc
-        finally:
-            self._in_tx = False
+        self._settle()
 
     # ---------------------------------------------------------------- reads
     def pragma(self, name: str):

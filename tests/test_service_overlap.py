@@ -183,23 +183,24 @@ def test_a_failed_commit_in_the_loop_raises_and_keeps_nothing_of_the_batch(strea
     from matcher import store as store_mod
 
     calls = {"n": 0}
-    real_start = store_mod.PendingCommit.start
+    real = store_mod.Transaction.set_positions
 
-    def failing_start(self, db):
-        calls["n"] += 1
-        if calls["n"] == 3:
-            db.execute("PRAGMA defer_foreign_keys=ON")
-            db.execute("INSERT INTO events VALUES ('EV-BROKEN', 1, 'issued', 0.0, 1000000000, 0.0, 0.0, NULL)")
-        return real_start(self, db)
+    def set_positions(self, source, positions):
+        real(self, source, positions)
+        if source == "replay":
+            calls["n"] += 1
+            if calls["n"] == 3:  # the third batch breaks a deferred foreign key: its COMMIT fails
+                self._db.execute("PRAGMA defer_foreign_keys=ON")
+                self._db.execute("INSERT INTO events VALUES ('EV-BROKEN', 1, 'issued', 0.0, 1000000000, 0.0, 0.0, NULL)")
 
-    monkeypatch.setattr(store_mod.PendingCommit, "start", failing_start)
+    monkeypatch.setattr(store_mod.Transaction, "set_positions", set_positions)
     out = tmp_path / "fail"
     out.mkdir()
     with Service(_config(37), sources=[ArchiveSource("replay", stream)], sinks=[], store_path=out / "s.sqlite") as svc:
         with pytest.raises(StoreError, match="commit failed"):
             svc.run(until_finished=True)
         assert svc.stats.batches == 2  # the two before it were finished
-    monkeypatch.setattr(store_mod.PendingCommit, "start", real_start)
+    monkeypatch.setattr(store_mod.Transaction, "set_positions", real)
     with Store(out / "s.sqlite") as st:
         assert st.counts()["messages"] == 74
         assert "EV-BROKEN" not in {r[0] for r in st._db.execute("SELECT event_id FROM events")}
@@ -222,3 +223,40 @@ def test_sqlite_reports_a_deferred_foreign_key_at_commit(tmp_path):
     with pytest.raises(sqlite3.IntegrityError, match="FOREIGN KEY"):
         db.execute("COMMIT")
     db.execute("ROLLBACK")
+
+
+def test_a_failed_deferred_write_fails_the_transaction_at_the_next_use(tmp_path):
+    # A bulk write handed to the writer thread that SQLite refuses (NOT NULL, sqlite.org/lang_createtable.html)
+    # surfaces at the next use of the store inside the block, naming the store; nothing of the block is kept.
+    with Store(tmp_path / "s.sqlite") as st:
+        with pytest.raises(StoreError, match=r"s\.sqlite: write failed, the batch was rolled back.*NOT NULL"):
+            with st.transaction() as tx:
+                tx.set_positions("src", {"a": "1"})
+                tx._write_rows("INSERT INTO positions VALUES", "(?,?,?,?)", [("src", "b", None, 0.0)])
+                st.positions("src")  # a read: waits for the writer, which failed
+        assert st.positions("src") == {}
+        with st.transaction() as tx:
+            tx.set_positions("src", {"a": "2"})
+        assert st.positions("src") == {"a": "2"}
+        # the same failure found only at the commit
+        with pytest.raises(StoreError, match="rolled back.*NOT NULL"):
+            with st.transaction() as tx:
+                tx._write_rows("INSERT INTO positions VALUES", "(?,?,?,?)", [("src", "c", None, 0.0)])
+        assert st.positions("src") == {"a": "2"}
+
+
+def test_bulk_rows_are_written_alike_in_every_statement_size(tmp_path):
+    # _insert_rows with big statements, fifty-row ones and single rows: the same table, row for row,
+    # as plain executemany (sqlite3's own, the reference).
+    from matcher.store import _insert_rows
+
+    rows = [(i, f"t{i}", i * 0.5) for i in range(2347)]
+    for big in (False, True):
+        db = sqlite3.connect(tmp_path / f"r{big}.sqlite")
+        db.execute("CREATE TABLE t (a INTEGER, b TEXT, c REAL)")
+        db.execute("CREATE TABLE ref (a INTEGER, b TEXT, c REAL)")
+        _insert_rows(db, "INSERT INTO t VALUES", "(?,?,?)", rows, big=big)
+        db.executemany("INSERT INTO ref VALUES (?,?,?)", rows)
+        assert db.execute("SELECT * FROM t ORDER BY rowid").fetchall() == db.execute(
+            "SELECT * FROM ref ORDER BY rowid").fetchall()
+        db.close()
