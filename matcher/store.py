@@ -23,6 +23,12 @@ A crash anywhere re-delivers at most the last batch; the dedup key (SHA-256 of t
 origin and the raw bytes) makes re-delivered messages no-ops, and results are
 upserts under ``(event_id, revision, transient_id)``, so nothing is lost or doubled.
 
+Threads: bulk writes of a transaction (message and transient rows, positions) and, for
+:meth:`Store.transaction_committed_later`, its COMMIT run in order on the store's writer
+thread; any other use of the connection first waits for the writer (``Store._db``), so the
+connection is never used by two threads at once. A deferred write that fails fails its
+transaction at the next use, as :class:`StoreError`, and the transaction is rolled back.
+
 Lifecycle rules the store enforces itself, so no caller can break them:
 
 - a GW revision older than the event's current one is stored but does not replace it;
