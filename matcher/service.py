@@ -17,7 +17,7 @@ the source before that either: a crash anywhere re-delivers at most the last bat
 which the store recognises (same bytes, same origin) or which was rolled back.
 
 With one source that allows it (``poll_ahead``: archives, inboxes) :meth:`Service.run`
-keeps two batches in flight: the COMMIT of batch N runs on the store's helper thread
+keeps two batches in flight: the COMMIT of batch N runs on the store's writer thread
 while this thread polls and decodes batch N+1; steps 4–6 of N follow once it is durable.
 
 The loop knows sources, codecs and sinks only through their protocols and registries
@@ -346,7 +346,7 @@ class Service:
         return _Batch(source, items, decoded)
 
     def _store_batch(self, batch: _Batch, *, later: bool) -> None:
-        """Step 3: one transaction for the whole batch (with ``later``, its COMMIT on the helper thread)."""
+        """Step 3: one transaction for the whole batch (with ``later``, its COMMIT on the writer thread)."""
         t2 = time.perf_counter()
         opened = self.store.transaction_committed_later() if later else self.store.transaction()
         try:
@@ -405,7 +405,7 @@ class Service:
     def _run_overlapped(self, source: Source, until_finished: bool, max_batches: int | None) -> ServiceStats:
         """The loop for one source, two batches in flight.
 
-        While the store commits batch N on its helper thread (writing pages and waiting for the
+        While the store commits batch N on its writer thread (writing pages and waiting for the
         disk, without Python's lock), this thread polls and decodes batch N+1; then it finishes
         N (source commit, publish, reports) and stores N+1. The order of what becomes durable,
         what the source is told and what is published is the same as in :meth:`step`; only the

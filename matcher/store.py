@@ -47,8 +47,8 @@ import base64
 import json
 import math
 import os
-import re
 import queue
+import re
 import sqlite3
 import threading
 import time
@@ -396,12 +396,12 @@ class Transaction:
     def _write_rows(self, head: str, row: str, rows: Sequence[Sequence], tail: str = "") -> None:
         """:func:`_insert_rows` on the writer thread (bulk rows of this transaction; nothing read back)."""
         if rows:
-            self._store._defer(lambda conn: _insert_rows(conn, head, row, rows, tail, big=True))
+            self._store._writer.submit(lambda conn: _insert_rows(conn, head, row, rows, tail, big=True))
 
     def _write_many(self, sql: str, rows: Sequence[Sequence]) -> None:
         """``executemany(sql, rows)`` on the writer thread (nothing read back)."""
         if rows:
-            self._store._defer(lambda conn: conn.executemany(sql, rows))
+            self._store._writer.submit(lambda conn: conn.executemany(sql, rows))
 
     # ----------------------------------------------------------------- input
     def _origin_columns(self, item: RawItem):
@@ -459,10 +459,9 @@ class Transaction:
 
     @staticmethod
     def _transient_values(t: TransientReport, sha: str | None):
-        loc, extra = t.localization, t.extra
         values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
-                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha,
-                  None if loc is None else _loc_ref(loc), _dumps(extra) if extra else "{}")
+                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
+                  _dumps(t.extra) if t.extra else "{}")
         # What "the same report" means: every stored field equal. orjson writes floats in their shortest
         # round-trip form and strings as they are, so equal texts mean equal fields (stores written before
         # held repr() here: a report re-delivered into one is seen as updated once, and re-scored to the
@@ -711,7 +710,7 @@ class Transaction:
 
 
 class _Writer:
-    """The store's helper thread: runs deferred writes and commits in order on the connection.
+    """The store's writer thread: runs deferred writes and commits in order on the connection.
 
     Whoever submits work does not touch the connection again until :meth:`drain` returned
     (:attr:`Store._db` drains first), so the connection is never used by two threads at once.
@@ -792,8 +791,8 @@ class Store:
         parent = os.path.dirname(self.path)
         try:
             os.makedirs(parent, exist_ok=True)
-            # check_same_thread=False: a batch's COMMIT may run on a helper thread
-            # (transaction_committed_later); the store never uses it from two threads at once.
+            # check_same_thread=False: bulk writes and a batch's COMMIT run on the store's writer
+            # thread (_Writer); the store never uses the connection from two threads at once.
             self._conn = sqlite3.connect(self.path, isolation_level=None, timeout=busy_timeout_s,
                                        check_same_thread=False)
         except (OSError, sqlite3.Error) as exc:
@@ -834,10 +833,6 @@ class Store:
         if self._writer.unsettled or self._committing:
             self._settle()
         return self._conn
-
-    def _defer(self, job: Callable[[sqlite3.Connection], Any]) -> None:
-        """Run ``job(connection)`` on the writer thread, after what was handed to it before."""
-        self._writer.submit(job)
 
     def _settle(self) -> None:
         """Wait for the writer; a failure there rolls the transaction back and raises StoreError."""
@@ -895,7 +890,7 @@ class Store:
         with self._open_transaction() as tx:
             yield tx
         self._committing = True
-        self._defer(lambda conn: conn.execute("COMMIT"))
+        self._writer.submit(lambda conn: conn.execute("COMMIT"))
 
     @contextmanager
     def _open_transaction(self) -> Iterator[Transaction]:

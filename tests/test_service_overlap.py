@@ -163,7 +163,7 @@ def test_a_deferred_commit_is_visible_to_every_later_use(tmp_path):
 
 def test_a_failed_deferred_commit_rolls_back_and_names_the_store(tmp_path):
     # SQLite checks deferred foreign keys at COMMIT (sqlite.org/foreignkeys.html, "Deferred
-    # Foreign Key Constraints"): the commit fails on the helper thread and the error comes back.
+    # Foreign Key Constraints"): the commit fails on the writer thread and the error comes back.
     with Store(tmp_path / "s.sqlite") as st:
         with st.transaction_committed_later() as tx:
             tx.set_positions("src", {"a": "1"})
