@@ -87,6 +87,8 @@ SCHEMA_VERSION = 1
 CACHE_KIB = 65536
 # Rows a statement for bulk writes on the writer thread (see _insert_rows).
 BIG_ROWS = 1000
+# Committed outbox rows kept in memory for the sinks to read (:meth:`Store.outbox_after`).
+OUTBOX_KEPT = 50_000
 RESULT_STATUSES = ("current", "superseded", "withdrawn")
 
 
@@ -584,6 +586,7 @@ class Transaction:
         text = payload if isinstance(payload, str) else _dumps(payload)
         cur = self._db.execute("INSERT INTO outbox (kind, key, payload, created_at) VALUES (?,?,?,?)",
                                (kind, key, text, self._now))
+        self._store._outbox_new.append(OutboxRow(cur.lastrowid, kind, key, text))
         return cur.lastrowid
 
     def put_result(self, event_id: str, revision: int, transient_id: str, record: Mapping[str, Any],
@@ -663,6 +666,7 @@ class Transaction:
         now = self._now
         _insert_rows(self._db, "INSERT INTO outbox (seq, kind, key, payload, created_at) VALUES", "(?,?,?,?,?)",
                      [(base + n, "match", p[0], p[6], now) for n, p in enumerate(changed, 1)])
+        self._store._outbox_new.extend(OutboxRow(base + n, "match", p[0], p[6]) for n, p in enumerate(changed, 1))
         _insert_rows(
             self._db, "INSERT INTO results VALUES", "(?,?,?,?,?,?,?,?,?,?,?,?,?)",
             [(k, e, r, t, s, rec.get("class"), rec.get("p_assoc"), rec.get("fap"), rec.get("odds"),
@@ -800,6 +804,9 @@ class Store:
         self._in_tx = False
         self._committing = False  # a COMMIT was handed to the writer
         self._writer = _Writer(self._conn)
+        # Outbox rows of the open transaction, and the latest committed ones (what the sinks read next).
+        self._outbox_new: list[OutboxRow] = []
+        self._outbox_recent: list[OutboxRow] = []
         try:
             mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
             if mode.lower() != "wal":
@@ -840,8 +847,11 @@ class Store:
         committing, self._committing = self._committing, False
         if committing:
             self._in_tx = False
+            if error is None:
+                self._committed_outbox()
         if error is None:
             return
+        self._outbox_new.clear()
         if self._conn.in_transaction:
             self._conn.execute("ROLLBACK")
         what = "commit" if committing else "write"
@@ -871,8 +881,12 @@ class Store:
         try:
             self._settle()
             self._conn.execute("COMMIT")
+        except BaseException:
+            self._outbox_new.clear()
+            raise
         finally:
             self._in_tx = False
+        self._committed_outbox()
 
     @contextmanager
     def transaction_committed_later(self) -> Iterator[Transaction]:
@@ -907,7 +921,25 @@ class Store:
                     self._conn.execute("ROLLBACK")
             finally:
                 self._in_tx = False
+                self._outbox_new.clear()
             raise
+
+    def _committed_outbox(self) -> None:
+        """Keep the outbox rows just committed for :meth:`outbox_after` (the sinks read them next).
+
+        Rows are kept while their sequence numbers run on without a gap from the ones kept
+        already, at most :data:`OUTBOX_KEPT` of them (the latest); anything else is read back
+        from the table as before.
+        """
+        new, self._outbox_new = self._outbox_new, []
+        if not new:
+            return
+        if any(b.seq != a.seq + 1 for a, b in zip(new, new[1:])):
+            self._outbox_recent = []  # a gap in the run: read back from the table
+            return
+        kept = self._outbox_recent
+        kept = kept + new if kept and new[0].seq == kept[-1].seq + 1 else new
+        self._outbox_recent = kept[-OUTBOX_KEPT:]
 
     def wait_commit(self) -> None:
         """Wait for a commit started by :meth:`transaction_committed_later` (and every write before it).
@@ -1023,9 +1055,23 @@ class Store:
 
     # --------------------------------------------------------------- outbox
     def outbox_after(self, seq: int, limit: int = 1000) -> list[OutboxRow]:
-        """Outbox rows with a sequence number above ``seq``, in order."""
-        return [OutboxRow(*r) for r in self._db.execute(
-            "SELECT seq, kind, key, payload FROM outbox WHERE seq > ? ORDER BY seq LIMIT ?", (int(seq), int(limit)))]
+        """Outbox rows with a sequence number above ``seq``, in order.
+
+        Rows this store committed last are taken from memory (the same rows: the sinks read
+        what a batch just wrote without reading it back); others come from the table.
+        """
+        db = self._db  # a commit under way has ended (and kept its rows)
+        kept = self._outbox_recent
+        seq, limit = int(seq), int(limit)
+        rows: list[OutboxRow] = []
+        if kept and kept[0].seq <= seq + 1 <= kept[-1].seq:
+            start = seq + 1 - kept[0].seq
+            rows = kept[start:start + limit]
+            seq = rows[-1].seq if rows else seq
+        if len(rows) < limit:  # beyond what is kept (older rows, or rows another connection wrote after)
+            rows += [OutboxRow(*r) for r in db.execute(
+                "SELECT seq, kind, key, payload FROM outbox WHERE seq > ? ORDER BY seq LIMIT ?", (seq, limit - len(rows)))]
+        return rows
 
     def last_seq(self) -> int:
         row = self._db.execute("SELECT MAX(seq) FROM outbox").fetchone()
