@@ -29,6 +29,10 @@ thread; any other use of the connection first waits for the writer (``Store._db`
 connection is never used by two threads at once. A deferred write that fails fails its
 transaction at the next use, as :class:`StoreError`, and the transaction is rolled back.
 
+The outbox rows a transaction wrote are kept in memory once it has committed, and
+:meth:`Store.outbox_after` serves them from there (what the sinks read next); anything not
+kept is read from the table.
+
 Lifecycle rules the store enforces itself, so no caller can break them:
 
 - a GW revision older than the event's current one is stored but does not replace it;
