@@ -855,7 +855,6 @@ class Store:
                 self._committed_outbox()
         if error is None:
             return
-        self._outbox_new.clear()
         if self._conn.in_transaction:
             self._conn.execute("ROLLBACK")
         what = "commit" if committing else "write"
@@ -885,9 +884,6 @@ class Store:
         try:
             self._settle()
             self._conn.execute("COMMIT")
-        except BaseException:
-            self._outbox_new.clear()
-            raise
         finally:
             self._in_tx = False
         self._committed_outbox()
@@ -916,6 +912,7 @@ class Store:
             raise RuntimeError("store transactions do not nest")
         self._db.execute("BEGIN IMMEDIATE")
         self._in_tx = True
+        self._outbox_new = []  # rows of a transaction that failed are never kept
         try:
             yield Transaction(self)
         except BaseException:
@@ -925,7 +922,6 @@ class Store:
                     self._conn.execute("ROLLBACK")
             finally:
                 self._in_tx = False
-                self._outbox_new.clear()
             raise
 
     def _committed_outbox(self) -> None:
