@@ -216,19 +216,58 @@ def test_a_sink_that_is_away_is_retried_not_fatal(stream, golden, tmp_path):
     assert len(sink.rows) == len({r.seq for r in sink.rows})  # each outbox row once
 
 
-def test_loop_gc_restores_the_collector_thresholds():
-    # The loop runs with a larger young-generation threshold and must leave the process as it found it.
+def test_loop_gc_turns_the_collector_off_and_restores_it():
+    # The loop runs with automatic collection off and must leave the process as it found it.
     import gc
 
-    from matcher.service import LOOP_GC_THRESHOLD, loop_gc
+    from matcher.service import loop_gc
 
-    before = gc.get_threshold()
+    assert gc.isenabled()
     with loop_gc():
-        assert gc.get_threshold()[0] == LOOP_GC_THRESHOLD
-    assert gc.get_threshold() == before
+        assert not gc.isenabled()
+        with loop_gc():
+            assert not gc.isenabled()
+        assert not gc.isenabled()
+    assert gc.isenabled()
     try:
         with loop_gc():
             raise KeyError("x")
     except KeyError:
         pass
-    assert gc.get_threshold() == before
+    assert gc.isenabled()
+    gc.disable()
+    try:
+        with loop_gc():
+            pass
+        assert not gc.isenabled()  # off before, off after
+    finally:
+        gc.enable()
+
+
+def test_loop_gc_tick_collects_cyclic_garbage_once_the_limit_built_up():
+    # Python's gc module (standard library documentation): gc.get_count()[0] counts tracked
+    # allocations not yet freed since the last young collection, so cycles advance it and
+    # objects freed by reference counting do not.
+    import gc
+    import weakref
+
+    from matcher.service import loop_gc, loop_gc_tick
+
+    class Node:
+        pass
+
+    with loop_gc():
+        gc.collect()
+        for _ in range(5000):  # acyclic churn: freed at once, the count stays low
+            [Node()]
+        assert not loop_gc_tick(limit=1000)
+        probes = []
+        for _ in range(600):  # cyclic garbage: two tracked objects (instance, its __dict__) each
+            n = Node()
+            n.me = n
+            probes.append(weakref.ref(n))
+            del n
+        assert all(p() is not None for p in probes)  # nothing collects while the collector is off
+        assert loop_gc_tick(limit=1000)
+        assert all(p() is None for p in probes)
+        assert not loop_gc_tick(limit=1000)  # the count starts again from zero
