@@ -284,7 +284,7 @@ def test_samples_follow_the_3d_posterior(blob3d, rng):
 
 
 def test_direct_lookup_table_equals_binary_searches_per_cell():
-    # The order-8 lookup table is built by spreading each coarse pixel over its cells; the
+    # The order-8 lookup table is built by filling each coarse pixel's run of cells; the
     # reference is the definition (a cell holds one pixel iff exactly one pixel starts in
     # [the pixel containing the cell's start, the cell's end)), by numpy.searchsorted.
     import numpy as np

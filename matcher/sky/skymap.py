@@ -290,11 +290,13 @@ class SkyMap:
         # this replaced: tests/test_sky_maps.py; ten times faster on a 786,432-cell table.)
         table = np.full(12 * 4**c, -1, dtype=np.int32 if self.npix < 2**31 else np.int64)
         whole = np.flatnonzero(self.order <= c)
-        if whole.size:
-            first = self._starts[whole] >> shift
-            count = np.int64(1) << (2 * (c - self.order[whole].astype(np.int64)))
-            offsets = np.arange(int(count.sum()), dtype=np.int64) - np.repeat(np.cumsum(count) - count, count)
-            table[np.repeat(first, count) + offsets] = np.repeat(whole, count)
+        orders = self.order[whole]
+        # One order at a time: a pixel of order o covers an aligned run of 4**(c - o) cells, a row
+        # of the table seen as rows of that length, so each order is one broadcast assignment.
+        for o in np.unique(orders).tolist():
+            sel = whole[orders == o]
+            run = 1 << (2 * (c - o))
+            table.reshape(-1, run)[(self._starts[sel] >> shift) // run] = sel[:, None]
         return _readonly(table), shift
 
     # ----------------------------------------------------------------- lookups
