@@ -18,7 +18,7 @@ Sections::
       NAME: {kind: sqlite, path: out/results.sqlite}
     limits: {message_max_bytes, localization_max_bytes, url_allow_list,
              url_connect_timeout_s, url_total_timeout_s, local_roots}
-    service: {batch_size, poll_timeout_s}
+    service: {batch_size, poll_timeout_s, decode_process}
     secrets:                         # values never appear in errors, logs or repr
       NAME: {env: VARIABLE}          # or {file: PATH}, a file only its owner can read
     classes: {...}                   # counterpart classes (matcher.coincidence.parse_classes)
@@ -45,6 +45,7 @@ from matcher.keycheck import (
     ParseContext,
     read_yaml_file,
     check_keys,
+    get_bool,
     get_int,
     get_number,
     get_path,
@@ -197,10 +198,12 @@ class Limits:
 
 @dataclass(frozen=True)
 class ServiceSettings:
-    """``service``: ``batch_size`` (items per transaction) and ``poll_timeout_s`` (s)."""
+    """``service``: ``batch_size`` (items per transaction), ``poll_timeout_s`` (s) and
+    ``decode_process`` (decode large batches on a child process: :mod:`matcher.streams.decode_ahead`)."""
 
     batch_size: int = 500
     poll_timeout_s: float = 1.0
+    decode_process: bool = True
 
 
 @dataclass(frozen=True)
@@ -349,9 +352,10 @@ def config_from_mapping(raw: Any, *, base_dir=".", path: Path | None = None) -> 
     store_raw = check_keys(store_raw, ("path",), "store")
     store_path = get_path(store_raw, "path", "store", state_dir, "matcher.sqlite")
     limits = _limits(raw.get("limits"), ctx)
-    svc = check_keys(raw.get("service"), ("batch_size", "poll_timeout_s"), "service")
+    svc = check_keys(raw.get("service"), ("batch_size", "poll_timeout_s", "decode_process"), "service")
     service = ServiceSettings(get_int(svc, "batch_size", "service", 500, lo=1),
-                              get_number(svc, "poll_timeout_s", "service", 1.0, lo=0.0))
+                              get_number(svc, "poll_timeout_s", "service", 1.0, lo=0.0),
+                              get_bool(svc, "decode_process", "service", True))
 
     sources: dict[str, SourceConfig] = {}
     src_raw = check_keys(raw.get("sources"), [k for k in (raw.get("sources") or {}) if isinstance(k, str)], "sources")

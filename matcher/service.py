@@ -62,8 +62,12 @@ __all__ = [
     "open_catalog",
     "loop_gc",
     "loop_gc_tick",
+    "DECODE_PROCESS_MIN_ITEMS",
     "LOOP_GC_ALLOCATIONS",
 ]
+
+#: Items in a polled batch from which the service decodes on a child process (service.decode_process).
+DECODE_PROCESS_MIN_ITEMS = 2000
 
 #: Net allocations of tracked objects after which the loop collects, at a batch boundary.
 LOOP_GC_ALLOCATIONS = 1_000_000
@@ -284,6 +288,8 @@ class Service:
         self.stats = ServiceStats()
         self.store = Store(store_path or config.store_path)
         self.sources: list[Source] = []
+        self._decoder = None  # the decode process (matcher.streams.decode_ahead), started for large batches
+        self._decoder_off = not getattr(config.service, "decode_process", True)
         self.publishers: list[Publisher] = []
         self.writers: list[ReportWriter] = []
         try:
@@ -346,8 +352,9 @@ class Service:
         self._store_batch(batch, later=False)
         return self._finish(batch)
 
-    def _take(self, source: Source, timeout_s: float | None) -> _Batch | None:
-        """Steps 1 and 2: poll and decode (no store access)."""
+    def _take(self, source: Source, timeout_s: float | None, *, ahead_ok: bool = False) -> _Batch | None:
+        """Steps 1 and 2: poll and decode (no store access); with ``ahead_ok`` a large batch
+        starts the decode process for the batches after it (:meth:`_run_overlapped`)."""
         svc = self.config.service
         sec = self.stats.seconds
         t0 = time.perf_counter()
@@ -357,9 +364,84 @@ class Service:
         if not items:
             return None
         codec = self._codecs[source.name]
+        if ahead_ok:
+            self._maybe_start_decoder(codec, len(items))
         decoded = self.matcher.check([decode_item(it, codec, self._limits) for it in items])  # 2. decode
         sec["decode"] += time.perf_counter() - t1
         return _Batch(source, items, decoded)
+
+    # ----------------------------------------------------- decoding ahead
+    def _maybe_start_decoder(self, codec, n_items: int) -> None:
+        """Start the decode process once a batch is large enough for it to pay (its start takes ~0.2 s)."""
+        if self._decoder is not None or self._decoder_off or n_items < DECODE_PROCESS_MIN_ITEMS:
+            return
+        from matcher.streams.decode_ahead import DecodeProcess, eligible
+
+        self._decoder_off = True  # tried once per service
+        if eligible(codec):
+            try:
+                self._decoder = DecodeProcess(codec)
+            except OSError as exc:
+                warnings.warn(f"decode process not started ({exc}); decoding in this process",
+                              MatcherWarning, stacklevel=2)
+
+    def _send_ahead(self, source: Source):
+        """Poll what is there now (no wait) and give it to the decode process: ``(items, sent)``, or None."""
+        from matcher.streams.decode_ahead import DecodeProcessGone
+
+        t0 = time.perf_counter()
+        items = source.poll(self.config.service.batch_size, 0.0)
+        self.stats.seconds["poll"] += time.perf_counter() - t0
+        if not items:
+            return None
+        try:
+            self._decoder.submit(items)
+        except DecodeProcessGone as exc:
+            self._decoder_gone(exc)
+            return items, False
+        return items, True
+
+    def _collect(self, source: Source, items: list, sent: bool) -> _Batch:
+        """Step 2 for a batch given to the decode process: its reports rebuilt, anything else decoded here."""
+        from matcher.streams.decode_ahead import DecodeProcessGone, accepted_from
+
+        t0 = time.perf_counter()
+        codec = self._codecs[source.name]
+        fields = None
+        if sent:
+            try:
+                fields = self._decoder.result()
+            except DecodeProcessGone as exc:
+                self._decoder_gone(exc)
+        limits, name = self._limits, codec.name
+        if fields is None or len(fields) != len(items):
+            decoded = [decode_item(it, codec, limits) for it in items]
+        else:
+            decoded = [decode_item(it, codec, limits) if f is None else accepted_from(it, name, f)
+                       for it, f in zip(items, fields)]
+        decoded = self.matcher.check(decoded)
+        self.stats.seconds["decode"] += time.perf_counter() - t0
+        return _Batch(source, items, decoded)
+
+    def _drop_ahead(self, ahead) -> None:
+        """After an error: the decode process's answer for a batch that will not be stored is read and
+        dropped (the source gives those items again on restart), so the process can take the next."""
+        if ahead is None or not ahead[1] or self._decoder is None:
+            return
+        from matcher.streams.decode_ahead import DecodeProcessGone
+
+        try:
+            self._decoder.result()
+        except DecodeProcessGone as exc:
+            self._decoder_gone(exc)
+
+    def _decoder_gone(self, exc: Exception) -> None:
+        warnings.warn(f"{exc}; decoding in this process from now on (nothing is lost)", MatcherWarning, stacklevel=3)
+        dec, self._decoder = self._decoder, None
+        try:
+            dec.close(timeout_s=1.0)
+        except OSError:
+            pass
 
     def _store_batch(self, batch: _Batch, *, later: bool) -> None:
         """Step 3: one transaction for the whole batch (with ``later``, its COMMIT on the writer thread)."""
@@ -411,7 +493,8 @@ class Service:
 
         The garbage collector runs only between batches meanwhile (:func:`loop_gc`). With a single
         source that allows it (``poll_ahead``), a batch's commit overlaps the next batch's
-        poll and decode (:meth:`_run_overlapped`).
+        poll and decode (:meth:`_run_overlapped`), and large batches are decoded on a child
+        process one batch ahead (``service.decode_process``).
         """
         with loop_gc():
             if len(self.sources) == 1 and getattr(self.sources[0], "poll_ahead", False):
@@ -428,16 +511,25 @@ class Service:
         poll of N+1 comes before the source hears of N, which a ``poll_ahead`` source allows
         (its position lives in the store, or it tracks items in flight). A batch polled when a
         stop is requested is still stored and finished: nothing read is dropped.
+
+        Once the decode process runs, a third batch is in flight: after N is finished, what
+        the source has at once (no wait) is polled as N+2 and decoded on the child while this
+        thread stores N+1. It is always stored next, whatever stops the loop meanwhile
+        (short of an error, after which the source gives it again on restart).
         """
         done = 0
         pending: _Batch | None = None
+        ahead = None  # (items, sent): polled, on the decode process
         try:
             while True:
                 loop_gc_tick()
-                in_flight = 1 if pending is not None else 0
+                in_flight = (pending is not None) + (ahead is not None)
                 more = (not self._stop.is_set() and not (until_finished and source.finished)
                         and (max_batches is None or done + in_flight < max_batches))
-                nxt = self._take(source, None) if more else None
+                if ahead is not None:
+                    nxt, ahead = self._collect(source, *ahead), None
+                else:
+                    nxt = self._take(source, None, ahead_ok=True) if more else None
                 if pending is not None:
                     batch, pending = pending, None
                     self._finish(batch)
@@ -448,13 +540,19 @@ class Service:
                     if self.on_batch is not None:
                         self.on_batch(self, ApplyStats())
                     continue
+                if (self._decoder is not None and not self._stop.is_set()
+                        and not (until_finished and source.finished)
+                        and (max_batches is None or done + 2 <= max_batches)):
+                    ahead = self._send_ahead(source)
                 self._store_batch(nxt, later=True)
                 pending = nxt
         except Exception:
+            self._drop_ahead(ahead)
             if pending is not None:  # its commit is under way: finish it (it is the source's and sinks' due)
                 self._finish(pending)
             raise
         except BaseException:  # an interrupt: only let the commit under way end (nothing is acknowledged)
+            self._drop_ahead(ahead)
             if pending is not None:
                 self.store.wait_commit()
             raise
@@ -524,6 +622,9 @@ class Service:
 
     # -------------------------------------------------------------- shutdown
     def _close_parts(self) -> None:
+        if self._decoder is not None:
+            self._decoder.close()
+            self._decoder = None
         for p in self.publishers:
             p.close()
         for s in self.sources:

@@ -204,6 +204,7 @@ class MappedCodec:
     """
 
     name = "mapped"
+    decode_ahead = True  # decode() reads only the item's bytes, size and folder: it may run on a child process
 
     def __init__(self, fields, *, max_bytes: int = DEFAULT_MAX_MESSAGE_BYTES, keypath: str = "codec.fields"):
         self.rules = parse_mapping(fields, keypath) if isinstance(fields, Mapping) else tuple(fields)

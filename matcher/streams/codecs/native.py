@@ -56,6 +56,7 @@ class NativeCodec:
     """
 
     name = "native"
+    decode_ahead = True  # decode() reads only the item's bytes, size and folder: it may run on a child process
 
     def __init__(self, *, max_bytes: int = DEFAULT_MAX_MESSAGE_BYTES):
         self.max_bytes = int(max_bytes)

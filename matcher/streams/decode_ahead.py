@@ -1,0 +1,170 @@
+"""Decoding the next batch on a child process while the loop stores this one.
+
+The service loop runs on one core; decoding a report (parse, field checks, the message
+object) is a fifth of its time. :class:`DecodeProcess` runs a codec's ``decode`` on a
+child process for the common case — a transient report without a localization — and
+hands back each such message's fields; the loop rebuilds the same objects from them
+(:func:`accepted_from`), which costs a quarter of decoding. Everything else (alerts,
+localizations, anything the codec refuses or fails on) comes back as ``None`` and is
+decoded in this process by :func:`~matcher.streams.intake.decode_item`, as before, so
+rejections and their reasons are exactly those of the in-process path.
+
+The child holds no state beyond the codec: if it dies, the batch it had is decoded here
+and the loop goes on without it (:class:`DecodeProcessGone`). It ignores SIGINT (the
+terminal's Ctrl-C reaches the whole process group; the parent decides when to stop) and
+exits when its pipe closes, so a parent killed with SIGKILL leaves nothing behind.
+"""
+
+from __future__ import annotations
+
+import os
+import pickle
+import signal
+import struct
+import subprocess
+import sys
+from pathlib import Path
+from typing import Any, Sequence
+
+from matcher.frozen import build_frozen
+from matcher.streams.codecs.base import Codec
+from matcher.streams.intake import Accepted
+from matcher.streams.messages import TransientReport
+from matcher.streams.raw import Origin, RawItem
+
+__all__ = ["DecodeProcess", "DecodeProcessGone", "accepted_from", "decode_fields", "eligible"]
+
+_NOWHERE = Origin("decode-process", "bytes", "-")  # codecs read bytes, size and folder, never the origin
+
+
+class DecodeProcessGone(RuntimeError):
+    """The child process ended or its pipe broke; the caller decodes in process from now on."""
+
+
+def eligible(codec: Codec) -> bool:
+    """Whether ``codec`` may run on the child: it says so (``decode_ahead``) and pickles."""
+    if not getattr(codec, "decode_ahead", False):
+        return False
+    try:
+        pickle.dumps(codec)
+    except Exception:  # a codec holding something unpicklable stays in this process
+        return False
+    return True
+
+
+def decode_fields(codec: Codec, entries: Sequence[tuple[bytes, bool, int, str | None]]) -> list[dict | None]:
+    """What the child computes: per ``(data, truncated, size, base_dir)``, the fields of the
+    transient report the codec makes of it, or ``None`` for anything else."""
+    out: list[dict | None] = []
+    for data, truncated, size, base_dir in entries:
+        item = RawItem._read(data, _NOWHERE, None, 0.0, base_dir, truncated, size)
+        try:
+            m = codec.decode(item)
+        except Exception:  # refused or failed: decoded again in the parent, which names the reason
+            out.append(None)
+            continue
+        out.append(m.__dict__ if type(m) is TransientReport and m.localization is None else None)
+    return out
+
+
+def accepted_from(item: RawItem, codec_name: str, fields: dict) -> Accepted:
+    """``decode_item(item, codec)`` for an item whose report fields :func:`decode_fields` gave."""
+    return build_frozen(Accepted, {"item": item, "codec": codec_name,
+                                   "message": build_frozen(TransientReport, fields),
+                                   "localization": None, "reason": None})
+
+
+_HEADER = struct.Struct("<Q")  # each frame on the pipes: its length, then a pickle
+
+
+def _write_frame(fh, payload: bytes) -> None:
+    fh.write(_HEADER.pack(len(payload)))
+    fh.write(payload)
+    fh.flush()
+
+
+def _read_frame(fh) -> bytes:
+    head = fh.read(_HEADER.size)
+    if len(head) < _HEADER.size:
+        raise EOFError("the pipe closed")
+    (n,) = _HEADER.unpack(head)
+    payload = fh.read(n)
+    if len(payload) < n:
+        raise EOFError("the pipe closed inside a frame")
+    return payload
+
+
+def _serve(inp, out) -> None:
+    """The child's loop: the codec's pickle first, then ``(seq, entries)`` requests until the pipe closes."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        codec = pickle.loads(_read_frame(inp))
+        while True:
+            seq, entries = pickle.loads(_read_frame(inp))
+            _write_frame(out, pickle.dumps((seq, decode_fields(codec, entries)), protocol=pickle.HIGHEST_PROTOCOL))
+    except (EOFError, BrokenPipeError):  # the parent closed the pipe: it stopped, or gave up on us
+        return
+
+
+class DecodeProcess:
+    """One child process decoding with ``codec``; one batch in flight at a time.
+
+    The child is ``python -m matcher.streams.decode_ahead`` with pipes for stdin and stdout
+    (a plain subprocess: nothing of the parent's main module is imported again).
+    :meth:`submit` sends a batch's bytes; :meth:`result` waits for its fields (a list as
+    :func:`decode_fields` gives). Both raise :class:`DecodeProcessGone` when the child is
+    gone; :meth:`close` ends it.
+    """
+
+    def __init__(self, codec: Codec):
+        here = str(Path(__file__).resolve().parents[2])  # the folder holding the matcher package
+        env = dict(os.environ)
+        env["PYTHONPATH"] = os.pathsep.join([here, *filter(None, [env.get("PYTHONPATH")])])
+        self._proc = subprocess.Popen([sys.executable, "-m", "matcher.streams.decode_ahead"],
+                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, env=env, close_fds=True)
+        self._seq = 0
+        self._waiting: int | None = None
+        self._send(pickle.dumps(codec, protocol=pickle.HIGHEST_PROTOCOL))
+
+    def _send(self, payload: bytes) -> None:
+        try:
+            _write_frame(self._proc.stdin, payload)
+        except (OSError, ValueError) as exc:
+            raise DecodeProcessGone(f"decode process ended (exit code {self._proc.poll()}): {exc}") from None
+
+    def submit(self, items: Sequence[RawItem]) -> None:
+        if self._waiting is not None:
+            raise RuntimeError("a batch is already in flight on the decode process")
+        self._seq += 1
+        self._send(pickle.dumps((self._seq, [(it.data, it.truncated, it.size, it.base_dir) for it in items]),
+                                protocol=pickle.HIGHEST_PROTOCOL))
+        self._waiting = self._seq
+
+    def result(self) -> list[Any]:
+        if self._waiting is None:
+            raise RuntimeError("no batch is in flight on the decode process")
+        want, self._waiting = self._waiting, None
+        try:
+            seq, fields = pickle.loads(_read_frame(self._proc.stdout))
+        except (EOFError, OSError, ValueError, pickle.UnpicklingError) as exc:
+            raise DecodeProcessGone(f"decode process ended (exit code {self._proc.poll()}): {exc}") from None
+        if seq != want:  # cannot happen with one batch in flight; never use another batch's fields
+            raise DecodeProcessGone(f"decode process answered batch {seq}, expected {want}")
+        return fields
+
+    def close(self, timeout_s: float = 5.0) -> None:
+        """Close its pipes (it exits on that) and wait for it; killed if it does not end in time."""
+        for fh in (self._proc.stdin, self._proc.stdout):
+            try:
+                fh.close()
+            except OSError:
+                pass
+        try:
+            self._proc.wait(timeout_s)
+        except subprocess.TimeoutExpired:
+            self._proc.kill()
+            self._proc.wait(timeout_s)
+
+
+if __name__ == "__main__":
+    _serve(sys.stdin.buffer, sys.stdout.buffer)
