@@ -403,7 +403,7 @@ class Service:
 
     def _collect(self, source: Source, items: list, sent: bool) -> _Batch:
         """Step 2 for a batch given to the decode process: its reports rebuilt, anything else decoded here."""
-        from matcher.streams.decode_ahead import DecodeProcessGone, accepted_from
+        from matcher.streams.decode_ahead import DecodeProcessGone, rebuild
 
         t0 = time.perf_counter()
         codec = self._codecs[source.name]
@@ -413,12 +413,11 @@ class Service:
                 fields = self._decoder.result()
             except DecodeProcessGone as exc:
                 self._decoder_gone(exc)
-        limits, name = self._limits, codec.name
+        limits = self._limits
         if fields is None or len(fields) != len(items):
             decoded = [decode_item(it, codec, limits) for it in items]
         else:
-            decoded = [decode_item(it, codec, limits) if f is None else accepted_from(it, name, f)
-                       for it, f in zip(items, fields)]
+            decoded = rebuild(items, codec.name, fields, lambda it: decode_item(it, codec, limits))
         decoded = self.matcher.check(decoded)
         self.stats.seconds["decode"] += time.perf_counter() - t0
         return _Batch(source, items, decoded)

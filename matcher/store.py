@@ -60,14 +60,16 @@ import urllib.parse
 from contextlib import contextmanager
 from dataclasses import dataclass
 from itertools import chain
-from typing import Any, Callable, Iterator, Mapping, NamedTuple, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Mapping, NamedTuple, Sequence
 
 import orjson
 
 from matcher.errors import InputError
-from matcher.streams.localization import LoadedLocalization
 from matcher.streams.messages import GWAlert, Localization, Message, TransientReport
 from matcher.streams.raw import RawItem, dedup_key
+
+if TYPE_CHECKING:  # only named in annotations: the store imports no sky-map code (the decode process imports it)
+    from matcher.streams.localization import LoadedLocalization
 
 __all__ = [
     "Store",
@@ -464,7 +466,9 @@ class Transaction:
         return StoredMessage(mid, "gw_alert", "older", prev)
 
     @staticmethod
-    def _transient_values(t: TransientReport, sha: str | None):
+    def transient_values(t: TransientReport, sha: str | None) -> tuple[tuple, str]:
+        """The transients row's values for report ``t`` (``sha``: its stored localization's), and their
+        canonical text (the ``content`` column, which tells a changed report from the same one)."""
         values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
                   t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
                   _dumps(t.extra) if t.extra else "{}")
@@ -480,7 +484,9 @@ class Transaction:
 
         Parameters
         ----------
-        entries : sequence of (item, codec, message, localization)
+        entries : sequence of (item, codec, message, localization[, prepared])
+            ``prepared``: ``(dedup key, *transient_values(message, None))`` of a report without a
+            localization, computed already (on the decode process).
 
         Returns
         -------
@@ -491,9 +497,11 @@ class Transaction:
         now = self._now
         out: list[StoredMessage | None] = [None] * len(entries)
         keys, seqs, pairs, tids = [], [], [], set()
-        for item, _codec, message, _loc in entries:
+        for entry in entries:
+            item, message = entry[0], entry[2]
             o = item.origin
-            key = dedup_key(item.data, o)  # item.dedup_key
+            prepared = entry[4] if len(entry) > 4 else None
+            key = dedup_key(item.data, o) if prepared is None else prepared[0]  # item.dedup_key
             seq = -1 if o.offset is None else int(o.offset)  # the dedup index's leading column (-1: a whole file)
             keys.append(key)
             seqs.append(seq)
@@ -501,10 +509,14 @@ class Transaction:
             if isinstance(message, TransientReport):
                 tids.add(message.transient_id)
         existing: set[bytes] = set()
-        for chunk in _chunks(pairs, 500):
-            existing.update(r[0] for r in db.execute(  # a join, so that SQLite searches the index per pair
-                f"WITH v(s, d) AS (VALUES {','.join(['(?,?)'] * (len(chunk) // 2))})"
-                " SELECT m.dedup FROM v JOIN messages m ON m.origin_seq = v.s AND m.dedup = v.d", chunk))
+        # A batch read past every stored line or offset (a replay into a new store, a live stream)
+        # can have nothing stored yet: one look at the index's end instead of a search per pair.
+        top = db.execute("SELECT MAX(origin_seq) FROM messages").fetchone()[0] if seqs else None
+        if top is not None and min(seqs) <= top:
+            for chunk in _chunks(pairs, 500):
+                existing.update(r[0] for r in db.execute(  # a join, so that SQLite searches the index per pair
+                    f"WITH v(s, d) AS (VALUES {','.join(['(?,?)'] * (len(chunk) // 2))})"
+                    " SELECT m.dedup FROM v JOIN messages m ON m.origin_seq = v.s AND m.dedup = v.d", chunk))
         known: dict[str, str] = {}
         for chunk in _chunks(list(tids)):
             known.update(db.execute(f"SELECT transient_id, content FROM transients WHERE transient_id IN"
@@ -513,7 +525,8 @@ class Transaction:
         # One pass: the message rows, and what each new report does to its transient (the rows are
         # written below in the order the foreign keys need: messages, then alerts and transients).
         rows, alerts, inserts, updates, same = [], [], [], [], []
-        for i, (item, codec, message, loc) in enumerate(entries):
+        for i, entry in enumerate(entries):
+            item, codec, message, loc = entry[:4]
             key = keys[i]
             if key in existing:
                 continue
@@ -526,7 +539,8 @@ class Transaction:
                 tid = message.transient_id
                 rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
                              item.received_at, now, "transient", tid, item.data))
-                values, content = self._transient_values(message, sha)
+                prepared = entry[4] if len(entry) > 4 and sha is None else None
+                values, content = self.transient_values(message, sha) if prepared is None else prepared[1:]
                 prev = known.get(tid)
                 if prev is None:
                     inserts.append((tid, mid, *values, content, item.received_at))

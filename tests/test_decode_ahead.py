@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import sqlite3
 import warnings
 
 import pytest
@@ -20,9 +21,9 @@ from matcher.config import config_from_mapping
 from matcher.errors import ConfigError, MatcherWarning
 from matcher.replay import default_config
 from matcher.service import Service
-from matcher.store import Store
+from matcher.store import Store, Transaction
 from matcher.streams.codecs import MappedCodec, NativeCodec
-from matcher.streams.decode_ahead import DecodeProcess, accepted_from, decode_fields, eligible
+from matcher.streams.decode_ahead import DecodeProcess, decode_fields, eligible, entries_of, rebuild
 from matcher.streams.intake import Accepted, decode_item
 from matcher.streams.raw import RawItem
 from matcher.streams.sinks import JsonlSink
@@ -32,7 +33,7 @@ from test_decode_fastpath import varied_lines
 
 
 def _entries(items):
-    return [(it.data, it.truncated, it.size, it.base_dir) for it in items]
+    return entries_of(items)
 
 
 @pytest.mark.parametrize("max_bytes", [16 * 1024 * 1024, 300])
@@ -42,17 +43,19 @@ def test_rebuilt_items_equal_the_in_process_decode(tmp_path, max_bytes):
     fields = decode_fields(codec, _entries(items))
     assert len(fields) == len(items)
     rebuilt = 0
-    for item, f in zip(items, fields):
+    whole = rebuild(items, codec.name, fields, lambda it: ("in the parent", it))
+    for item, f, got in zip(items, fields, whole):
         want = decode_item(item, codec)
-        if f is None:  # decoded in the parent: anything but a plain accepted transient report
+        if f is None:
+            assert got == ("in the parent", item)  # decoded in the parent: anything but a plain accepted transient report
             assert not (isinstance(want, Accepted) and type(want.message).__name__ == "TransientReport"
                         and want.message.localization is None)
             continue
-        got = accepted_from(item, codec.name, f)
         assert got == want
         assert repr(got) == repr(want)
         assert list(vars(got.message).items()) == list(vars(want.message).items())
         assert type(got.message.extra) is type(want.message.extra)
+        assert got.prepared == (item.dedup_key, *Transaction.transient_values(want.message, None))
         rebuilt += 1
     assert rebuilt > 500  # the usual lines do go through the child's path
 
@@ -73,8 +76,8 @@ def test_the_mapped_codec_runs_on_the_child_alike(tmp_path):
     finally:
         with_child.close()
     assert fields[-3:] == [None, None, None]
-    assert [accepted_from(it, codec.name, f) for it, f in zip(items[:50], fields[:50])] == \
-        [decode_item(it, codec) for it in items[:50]]
+    assert rebuild(items, codec.name, fields, lambda it: decode_item(it, codec)) == \
+        [decode_item(it, codec) for it in items]
 
 
 def test_the_child_gives_what_decode_fields_gives_and_exits_when_closed(tmp_path):
@@ -131,7 +134,16 @@ def _run(tmp_path, name, stream, *, decode_process, batch=37, on_batch=None, **r
         outbox = [(r.seq, r.kind, r.key, r.payload) for r in st.outbox_after(0, 10**9)]
         quarantine = st.counts()["quarantine"]
         got = (results_by_key(st), outbox, st.positions("replay"), quarantine, (out / "m.jsonl").read_bytes())
-    return got, stats, used
+    db = sqlite3.connect(out / "s.sqlite")  # the stored rows themselves, dedup keys and contents included
+    try:
+        rows = [db.execute(f"SELECT {cols} FROM {table} ORDER BY {order}").fetchall() for table, cols, order in (
+            ("messages", "id, dedup, origin_seq, origin, codec, kind, message_key, raw", "id"),
+            ("transients", "transient_id, message_id, class, ra_deg, dec_deg, time, extra, content, reports",
+             "transient_id"),
+            ("quarantine", "dedup, origin, codec, field, reason, raw", "id"))]
+    finally:
+        db.close()
+    return (*got, rows), stats, used
 
 
 @pytest.fixture

@@ -4,7 +4,7 @@ The service loop runs on one core; decoding a report (parse, field checks, the m
 object) is a fifth of its time. :class:`DecodeProcess` runs a codec's ``decode`` on a
 child process for the common case — a transient report without a localization — and
 hands back each such message's fields; the loop rebuilds the same objects from them
-(:func:`accepted_from`), which costs a quarter of decoding. Everything else (alerts,
+(:func:`rebuild`), which costs a quarter of decoding. Everything else (alerts,
 localizations, anything the codec refuses or fails on) comes back as ``None`` and is
 decoded in this process by :func:`~matcher.streams.intake.decode_item`, as before, so
 rejections and their reasons are exactly those of the in-process path.
@@ -28,13 +28,11 @@ from typing import Any, Sequence
 
 from matcher.frozen import build_frozen
 from matcher.streams.codecs.base import Codec
-from matcher.streams.intake import Accepted
 from matcher.streams.messages import TransientReport
-from matcher.streams.raw import Origin, RawItem
+from matcher.streams.raw import Origin, RawItem, dedup_key
 
-__all__ = ["DecodeProcess", "DecodeProcessGone", "accepted_from", "decode_fields", "eligible"]
+__all__ = ["DecodeProcess", "DecodeProcessGone", "decode_fields", "eligible", "entries_of", "rebuild"]
 
-_NOWHERE = Origin("decode-process", "bytes", "-")  # codecs read bytes, size and folder, never the origin
 
 
 class DecodeProcessGone(RuntimeError):
@@ -52,26 +50,50 @@ def eligible(codec: Codec) -> bool:
     return True
 
 
-def decode_fields(codec: Codec, entries: Sequence[tuple[bytes, bool, int, str | None]]) -> list[dict | None]:
-    """What the child computes: per ``(data, truncated, size, base_dir)``, the fields of the
-    transient report the codec makes of it, or ``None`` for anything else."""
-    out: list[dict | None] = []
-    for data, truncated, size, base_dir in entries:
-        item = RawItem._read(data, _NOWHERE, None, 0.0, base_dir, truncated, size)
+def entries_of(items: Sequence[RawItem]) -> list[tuple]:
+    """What the child is sent of each item: its bytes, size, folder and origin (as a tuple)."""
+    return [(it.data, it.truncated, it.size, it.base_dir, it.origin.kind, it.origin.where, it.origin.part,
+             it.origin.offset) for it in items]
+
+
+def decode_fields(codec: Codec, entries: Sequence[tuple]) -> list[tuple | None]:
+    """What the child computes: per entry (:func:`entries_of`), for a transient report without a
+    localization ``(fields, (key, values, content))`` — the report's attributes, the item's dedup
+    key (:func:`~matcher.streams.raw.dedup_key`) and its transients row
+    (:meth:`~matcher.store.Transaction.transient_values`) — or ``None`` for anything else."""
+    from matcher.store import Transaction
+
+    values = Transaction.transient_values
+    out: list[tuple | None] = []
+    for data, truncated, size, base_dir, kind, where, part, offset in entries:
+        origin = Origin._of("", kind, where, part, offset)  # the source's name is not part of the key
+        item = RawItem._read(data, origin, None, 0.0, base_dir, truncated, size)
         try:
             m = codec.decode(item)
         except Exception:  # refused or failed: decoded again in the parent, which names the reason
             out.append(None)
             continue
-        out.append(m.__dict__ if type(m) is TransientReport and m.localization is None else None)
+        if type(m) is TransientReport and m.localization is None:
+            out.append((m.__dict__, (dedup_key(data, origin), *values(m, None))))
+        else:
+            out.append(None)
     return out
 
 
-def accepted_from(item: RawItem, codec_name: str, fields: dict) -> Accepted:
-    """``decode_item(item, codec)`` for an item whose report fields :func:`decode_fields` gave."""
-    return build_frozen(Accepted, {"item": item, "codec": codec_name,
-                                   "message": build_frozen(TransientReport, fields),
-                                   "localization": None, "reason": None})
+def rebuild(items: Sequence[RawItem], codec_name: str, results: Sequence[tuple | None], fallback) -> list:
+    """Per item, ``decode_item(item, codec)``: rebuilt from what :func:`decode_fields` gave for it
+    (the same :class:`~matcher.streams.intake.Accepted`, its row attached), else ``fallback(item)``."""
+    from matcher.streams.intake import Accepted  # here: the child never loads the sky-map code intake needs
+
+    out = []
+    for item, got in zip(items, results):
+        if got is None:
+            out.append(fallback(item))
+        else:
+            out.append(build_frozen(Accepted, {"item": item, "codec": codec_name,
+                                               "message": build_frozen(TransientReport, got[0]),
+                                               "localization": None, "reason": None, "prepared": got[1]}))
+    return out
 
 
 _HEADER = struct.Struct("<Q")  # each frame on the pipes: its length, then a pickle
@@ -136,8 +158,7 @@ class DecodeProcess:
         if self._waiting is not None:
             raise RuntimeError("a batch is already in flight on the decode process")
         self._seq += 1
-        self._send(pickle.dumps((self._seq, [(it.data, it.truncated, it.size, it.base_dir) for it in items]),
-                                protocol=pickle.HIGHEST_PROTOCOL))
+        self._send(pickle.dumps((self._seq, entries_of(items)), protocol=pickle.HIGHEST_PROTOCOL))
         self._waiting = self._seq
 
     def result(self) -> list[Any]:

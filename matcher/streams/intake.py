@@ -10,7 +10,7 @@ source needs to settle an item after the store has committed it.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 from matcher.errors import MessageError, SkyMapError
@@ -25,13 +25,20 @@ __all__ = ["Accepted", "Rejected", "Decoded", "decode_item", "record", "record_b
 
 @dataclass(frozen=True)
 class Accepted:
-    """A valid message, with its loaded localization when it has one."""
+    """A valid message, with its loaded localization when it has one.
+
+    ``prepared``: for a report decoded on the decode process, ``(dedup key, values, content)``
+    — the item's :func:`~matcher.streams.raw.dedup_key` and the report's transients row as
+    :meth:`matcher.store.Transaction.transient_values` gives it — computed there (not part of
+    the value: equality and repr ignore it).
+    """
 
     item: RawItem
     codec: str
     message: Message
     localization: LoadedLocalization | None = None
     reason: None = None
+    prepared: tuple | None = field(default=None, compare=False, repr=False)
 
 
 @dataclass(frozen=True)
@@ -72,7 +79,7 @@ def decode_item(item: RawItem, codec: Codec, limits: LocalizationLimits = Locali
     if loc is None:
         # Accepted(item, codec.name, message): the result of almost every item.
         return build_frozen(Accepted, {"item": item, "codec": codec.name, "message": message,
-                                       "localization": None, "reason": None})
+                                       "localization": None, "reason": None, "prepared": None})
     try:
         loaded = load_localization(loc, limits, opener=opener)
     except SkyMapError as exc:
@@ -105,7 +112,7 @@ def record_batch(tx, decoded) -> list:
     """
     out: list = [None] * len(decoded)
     accepted = [(i, d) for i, d in enumerate(decoded) if isinstance(d, Accepted)]
-    stored = tx.add_messages([(d.item, d.codec, d.message, d.localization) for _, d in accepted])
+    stored = tx.add_messages([(d.item, d.codec, d.message, d.localization, d.prepared) for _, d in accepted])
     for (i, _), r in zip(accepted, stored):
         out[i] = r
     for i, d in enumerate(decoded):
