@@ -217,3 +217,44 @@ def test_the_decode_process_setting_is_read_and_checked():
     assert off.service.decode_process is False
     with pytest.raises(ConfigError, match=r"service\.decode_process.*must be true or false"):
         config_from_mapping({"service": {"decode_process": "sometimes"}})
+
+
+def test_the_child_outlives_no_parent_and_ignores_the_terminals_signals(tmp_path):
+    # A parent killed with SIGKILL closes its pipe ends, and the child must end on that; SIGINT and
+    # SIGTERM sent to the whole process group must leave the stop to the parent.
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    script = tmp_path / "parent.py"
+    script.write_text(
+        "import os, signal, sys\n"
+        "from matcher.streams.codecs import NativeCodec\n"
+        "from matcher.streams.decode_ahead import DecodeProcess\n"
+        "from matcher.streams.raw import RawItem\n"
+        "p = DecodeProcess(NativeCodec())\n"
+        "p.submit([RawItem.from_bytes(b'{}')])\n"
+        "assert p.result() == [None]\n"  # serving (its handlers are in place)
+        "p._proc.send_signal(signal.SIGINT)\n"
+        "p._proc.send_signal(signal.SIGTERM)\n"
+        "p.submit([RawItem.from_bytes(b'{}')])\n"
+        "assert p.result() == [None]\n"  # still serving after both signals
+        "print(p._proc.pid, flush=True)\n"
+        "os.kill(os.getpid(), signal.SIGKILL)\n")
+    run = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=60)
+    assert run.returncode == -signal.SIGKILL, run.stderr
+    child = int(run.stdout.strip())
+    deadline = time.monotonic() + 20
+    while time.monotonic() < deadline:
+        try:
+            os.kill(child, 0)
+        except ProcessLookupError:
+            break
+        with open(f"/proc/{child}/stat") as fh:  # gone but not yet reaped by init: a zombie counts as ended
+            if fh.read().split(")")[-1].split()[0] == "Z":
+                break
+        time.sleep(0.05)
+    else:
+        pytest.fail(f"decode process {child} still runs 20 s after its parent was killed")

@@ -10,9 +10,10 @@ decoded in this process by :func:`~matcher.streams.intake.decode_item`, as befor
 rejections and their reasons are exactly those of the in-process path.
 
 The child holds no state beyond the codec: if it dies, the batch it had is decoded here
-and the loop goes on without it (:class:`DecodeProcessGone`). It ignores SIGINT (the
-terminal's Ctrl-C reaches the whole process group; the parent decides when to stop) and
-exits when its pipe closes, so a parent killed with SIGKILL leaves nothing behind.
+and the loop goes on without it (:class:`DecodeProcessGone`). It ignores SIGINT and
+SIGTERM (a terminal's Ctrl-C and a service manager's stop reach the whole process group;
+the parent decides when to stop) and exits when its pipe closes, so a parent killed with
+SIGKILL leaves nothing behind.
 """
 
 from __future__ import annotations
@@ -118,7 +119,10 @@ def _read_frame(fh) -> bytes:
 
 def _serve(inp, out) -> None:
     """The child's loop: the codec's pickle first, then ``(seq, entries)`` requests until the pipe closes."""
+    # A terminal's Ctrl-C, or a service manager's SIGTERM, reaches the whole process group: the
+    # parent decides when to stop, and the child ends when the parent closes the pipe.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
     try:
         codec = pickle.loads(_read_frame(inp))
         while True:
@@ -131,8 +135,9 @@ def _serve(inp, out) -> None:
 class DecodeProcess:
     """One child process decoding with ``codec``; one batch in flight at a time.
 
-    The child is ``python -m matcher.streams.decode_ahead`` with pipes for stdin and stdout
-    (a plain subprocess: nothing of the parent's main module is imported again).
+    The child is ``python -m matcher.streams.decode_ahead`` with pipes for stdin and stdout, in
+    a process group of its own (a plain subprocess: nothing of the parent's main module is
+    imported again, and a terminal's Ctrl-C reaches only the parent).
     :meth:`submit` sends a batch's bytes; :meth:`result` waits for its fields (a list as
     :func:`decode_fields` gives). Both raise :class:`DecodeProcessGone` when the child is
     gone; :meth:`close` ends it.
@@ -143,7 +148,8 @@ class DecodeProcess:
         env = dict(os.environ)
         env["PYTHONPATH"] = os.pathsep.join([here, *filter(None, [env.get("PYTHONPATH")])])
         self._proc = subprocess.Popen([sys.executable, "-m", "matcher.streams.decode_ahead"],
-                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, env=env, close_fds=True)
+                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, env=env, close_fds=True,
+                                      process_group=0)  # a terminal's Ctrl-C goes to the parent's group only
         self._seq = 0
         self._waiting: int | None = None
         self._send(pickle.dumps(codec, protocol=pickle.HIGHEST_PROTOCOL))
