@@ -19,6 +19,9 @@ which the store recognises (same bytes, same origin) or which was rolled back.
 With one source that allows it (``poll_ahead``: archives, inboxes) :meth:`Service.run`
 keeps two batches in flight: the COMMIT of batch N runs on the store's writer thread
 while this thread polls and decodes batch N+1; steps 4–6 of N follow once it is durable.
+Once batches are large (``DECODE_PROCESS_MIN_ITEMS``), a third is in flight: polled after N
+is finished and decoded on a child process (:mod:`matcher.streams.decode_ahead`) while
+this thread stores N+1 (``service.decode_process`` turns that off).
 
 The loop knows sources, codecs and sinks only through their protocols and registries
 (:mod:`matcher.streams.sources`, :mod:`matcher.streams.codecs`,
