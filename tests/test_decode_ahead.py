@@ -60,6 +60,21 @@ def test_rebuilt_items_equal_the_in_process_decode(tmp_path, max_bytes):
     assert rebuilt > 500  # the usual lines do go through the child's path
 
 
+def test_large_items_stay_with_the_parent(tmp_path):
+    from matcher.streams.decode_ahead import SEND_MAX_BYTES
+
+    small = json.dumps({"schema": "matcher/1", "type": "transient", "transient_id": "S", "class": "optical",
+                        "ra_deg": 1.0, "dec_deg": 2.0, "time": "2026-03-14T05:00:00Z"}).encode()
+    big = small[:-1] + b', "note": "' + b"x" * SEND_MAX_BYTES + b'"}'
+    items = [RawItem.from_bytes(small), RawItem.from_bytes(big)]
+    entries = entries_of(items)
+    assert entries[0][0] == small and entries[1][0] is None
+    fields = decode_fields(NativeCodec(), entries)
+    assert fields[0] is not None and fields[1] is None
+    assert rebuild(items, "native", fields, lambda it: decode_item(it, NativeCodec())) == \
+        [decode_item(it, NativeCodec()) for it in items]
+
+
 def test_the_mapped_codec_runs_on_the_child_alike(tmp_path):
     codec = MappedCodec({"type": {"const": "transient"}, "transient_id": "cand.name", "class": {"const": "optical"}, "ra_deg": "pos.ra",
                          "dec_deg": "pos.dec", "time": "obs.utc"})

@@ -51,10 +51,16 @@ def eligible(codec: Codec) -> bool:
     return True
 
 
+#: Items larger than this are not sent to the child (the parent decodes them): a batch on the pipe
+#: stays a few tens of MB however large the messages a source allows.
+SEND_MAX_BYTES = 64 * 1024
+
+
 def entries_of(items: Sequence[RawItem]) -> list[tuple]:
-    """What the child is sent of each item: its bytes, size, folder and origin (as a tuple)."""
-    return [(it.data, it.truncated, it.size, it.base_dir, it.origin.kind, it.origin.where, it.origin.part,
-             it.origin.offset) for it in items]
+    """What the child is sent of each item: its bytes (``None`` above :data:`SEND_MAX_BYTES`),
+    size, folder and origin (as a tuple)."""
+    return [(it.data if it.size <= SEND_MAX_BYTES else None, it.truncated, it.size, it.base_dir, it.origin.kind,
+             it.origin.where, it.origin.part, it.origin.offset) for it in items]
 
 
 def decode_fields(codec: Codec, entries: Sequence[tuple]) -> list[tuple | None]:
@@ -67,6 +73,9 @@ def decode_fields(codec: Codec, entries: Sequence[tuple]) -> list[tuple | None]:
     values = Transaction.transient_values
     out: list[tuple | None] = []
     for data, truncated, size, base_dir, kind, where, part, offset in entries:
+        if data is None:  # not sent: decoded in the parent
+            out.append(None)
+            continue
         origin = Origin._of("", kind, where, part, offset)  # the source's name is not part of the key
         item = RawItem._read(data, origin, None, 0.0, base_dir, truncated, size)
         try:
@@ -194,4 +203,8 @@ class DecodeProcess:
 
 
 if __name__ == "__main__":
-    _serve(sys.stdin.buffer, sys.stdout.buffer)
+    # Frames go to the pipe that was stdout; anything printed meanwhile goes to stderr instead.
+    _frames = os.fdopen(os.dup(1), "wb")
+    os.dup2(2, 1)
+    sys.stdout = sys.stderr
+    _serve(sys.stdin.buffer, _frames)
