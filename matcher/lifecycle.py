@@ -306,11 +306,12 @@ class EventState:
 class _Columns:
     """Columns of the reports of one segment, computed once for every event."""
 
-    def __init__(self, reports: Sequence[TransientReport], maps: Sequence, classes, settings: MatchSettings):
+    def __init__(self, reports: Sequence[TransientReport], maps: Sequence, classes, settings: MatchSettings,
+                 numbers: np.ndarray | None = None):
         n = len(reports)
         self.reports = list(reports)
         self.maps = list(maps)
-        self.batch = ReportBatch.from_reports(self.reports)
+        self.batch = ReportBatch.from_reports(self.reports, numbers)
         b = self.batch
         names = sorted({r.klass for r in self.reports})
         inv = np.searchsorted(np.asarray(names), b.klass) if n else np.zeros(0, int)
@@ -516,7 +517,7 @@ class Matcher:
     # ------------------------------------------------------------------ reports
     def _apply_segment(self, tx, store, segment: list, stats: ApplyStats) -> None:
         results = record_batch(tx, segment)
-        reports, maps, received, updated = [], [], [], set()
+        reports, maps, received, updated, rows = [], [], [], set(), []
         for d, r in zip(segment, results):
             if isinstance(d, Rejected):
                 stats.quarantined += 1 if r else 0
@@ -530,13 +531,14 @@ class Matcher:
             if r.effect not in ("new", "updated"):
                 continue
             reports.append(d.message)
+            rows.append(d.prepared)
             maps.append(None if d.localization is None else d.localization.skymap)
             received.append(d.item.received_at)
             if r.effect == "updated":
                 updated.add(d.message.transient_id)
         if not reports:
             return
-        cols = _Columns(reports, maps, self.classes, self.settings)
+        cols = _Columns(reports, maps, self.classes, self.settings, _numbers_of(rows))
         # The stream clock before each report (it advances with the reports themselves).
         ahead = np.array([unix_to_gps(t) + CLOCK_LEAD_S for t in received])
         tick = np.minimum(cols.time, ahead)
@@ -709,6 +711,17 @@ class Matcher:
         for tid in list(ev.static):
             if tid not in ev.published and tid not in tops:
                 del ev.static[tid]
+
+
+def _numbers_of(prepared: list) -> np.ndarray | None:
+    """The reports' numbers from the decode process's array (``Accepted.prepared``), when every
+    report has them in the same batch's array; else None (read from the reports)."""
+    if not prepared or prepared[0] is None:
+        return None
+    table = prepared[0][3]
+    if any(p is None or p[3] is not table for p in prepared):
+        return None
+    return table[[p[4] for p in prepared]]
 
 
 def _finite(x) -> float | None:

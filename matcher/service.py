@@ -417,7 +417,7 @@ class Service:
             except DecodeProcessGone as exc:
                 self._decoder_gone(exc)
         limits = self._limits
-        if fields is None or len(fields) != len(items):
+        if fields is None or len(fields[0]) != len(items):
             decoded = [decode_item(it, codec, limits) for it in items]
         else:
             decoded = rebuild(items, codec.name, fields, lambda it: decode_item(it, codec, limits))

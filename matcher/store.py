@@ -485,8 +485,8 @@ class Transaction:
         Parameters
         ----------
         entries : sequence of (item, codec, message, localization[, prepared])
-            ``prepared``: ``(dedup key, *transient_values(message, None))`` of a report without a
-            localization, computed already (on the decode process).
+            ``prepared``: ``(dedup key, *transient_values(message, None), ...)`` of a report without a
+            localization, computed already (on the decode process; what follows is not the store's).
 
         Returns
         -------
@@ -540,7 +540,7 @@ class Transaction:
                 rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
                              item.received_at, now, "transient", tid, item.data))
                 prepared = entry[4] if len(entry) > 4 and sha is None else None
-                values, content = self.transient_values(message, sha) if prepared is None else prepared[1:]
+                values, content = self.transient_values(message, sha) if prepared is None else prepared[1:3]
                 prev = known.get(tid)
                 if prev is None:
                     inserts.append((tid, mid, *values, content, item.received_at))

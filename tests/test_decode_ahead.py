@@ -14,6 +14,7 @@ import json
 import sqlite3
 import warnings
 
+import numpy as np
 import pytest
 
 import matcher.service as service_module
@@ -23,7 +24,9 @@ from matcher.replay import default_config
 from matcher.service import Service
 from matcher.store import Store, Transaction
 from matcher.streams.codecs import MappedCodec, NativeCodec
-from matcher.streams.decode_ahead import DecodeProcess, decode_fields, eligible, entries_of, rebuild
+from matcher.coincidence.batch import REPORT_NUMBERS, ReportBatch
+from matcher.lifecycle import _numbers_of
+from matcher.streams.decode_ahead import NUMBERS, DecodeProcess, decode_fields, eligible, entries_of, rebuild
 from matcher.streams.intake import Accepted, decode_item
 from matcher.streams.raw import RawItem
 from matcher.streams.sinks import JsonlSink
@@ -40,10 +43,11 @@ def _entries(items):
 def test_rebuilt_items_equal_the_in_process_decode(tmp_path, max_bytes):
     codec = NativeCodec(max_bytes=max_bytes)
     items = [RawItem.from_bytes(line, base_dir=str(tmp_path), name=f"line {i}") for i, line in enumerate(varied_lines())]
-    fields = decode_fields(codec, _entries(items))
-    assert len(fields) == len(items)
+    decoded = decode_fields(codec, _entries(items))
+    fields, numbers = decoded
+    assert len(fields) == len(items) and len(numbers) == len(items) * 9 * 8
     rebuilt = 0
-    whole = rebuild(items, codec.name, fields, lambda it: ("in the parent", it))
+    whole = rebuild(items, codec.name, decoded, lambda it: ("in the parent", it))
     for item, f, got in zip(items, fields, whole):
         want = decode_item(item, codec)
         if f is None:
@@ -55,9 +59,20 @@ def test_rebuilt_items_equal_the_in_process_decode(tmp_path, max_bytes):
         assert repr(got) == repr(want)
         assert list(vars(got.message).items()) == list(vars(want.message).items())
         assert type(got.message.extra) is type(want.message.extra)
-        assert got.prepared == (item.dedup_key, *Transaction.transient_values(want.message, None))
+        assert got.prepared[:3] == (item.dedup_key, *Transaction.transient_values(want.message, None))
         rebuilt += 1
     assert rebuilt > 500  # the usual lines do go through the child's path
+    # The numbers array, row for row, against the batch built from the reports themselves.
+    kept = [g for g in whole if isinstance(g, Accepted)]
+    reports = [g.message for g in kept]
+    numbers = _numbers_of([g.prepared for g in kept])
+    assert numbers is not None and numbers.shape == (len(reports), 9)
+    assert REPORT_NUMBERS == NUMBERS
+    a, b = ReportBatch.from_reports(reports), ReportBatch.from_reports(reports, numbers)
+    for name in ("transient_id", "klass", *REPORT_NUMBERS):
+        assert np.array_equal(getattr(a, name), getattr(b, name), equal_nan=name not in ("transient_id", "klass"))
+    # A report decoded in process among them: the numbers are read from the reports instead.
+    assert _numbers_of([g.prepared for g in kept] + [None]) is None
 
 
 def test_large_items_stay_with_the_parent(tmp_path):
@@ -69,9 +84,9 @@ def test_large_items_stay_with_the_parent(tmp_path):
     items = [RawItem.from_bytes(small), RawItem.from_bytes(big)]
     entries = entries_of(items)
     assert entries[0][0] == small and entries[1][0] is None
-    fields = decode_fields(NativeCodec(), entries)
-    assert fields[0] is not None and fields[1] is None
-    assert rebuild(items, "native", fields, lambda it: decode_item(it, NativeCodec())) == \
+    decoded = decode_fields(NativeCodec(), entries)
+    assert decoded[0][0] is not None and decoded[0][1] is None
+    assert rebuild(items, "native", decoded, lambda it: decode_item(it, NativeCodec())) == \
         [decode_item(it, NativeCodec()) for it in items]
 
 
@@ -90,7 +105,7 @@ def test_the_mapped_codec_runs_on_the_child_alike(tmp_path):
         fields = with_child.result()
     finally:
         with_child.close()
-    assert fields[-3:] == [None, None, None]
+    assert fields[0][-3:] == [None, None, None]
     assert rebuild(items, codec.name, fields, lambda it: decode_item(it, codec)) == \
         [decode_item(it, codec) for it in items]
 
@@ -251,11 +266,11 @@ def test_the_child_outlives_no_parent_and_ignores_the_terminals_signals(tmp_path
         "from matcher.streams.raw import RawItem\n"
         "p = DecodeProcess(NativeCodec())\n"
         "p.submit([RawItem.from_bytes(b'{}')])\n"
-        "assert p.result() == [None]\n"  # serving (its handlers are in place)
+        "assert p.result()[0] == [None]\n"  # serving (its handlers are in place)
         "p._proc.send_signal(signal.SIGINT)\n"
         "p._proc.send_signal(signal.SIGTERM)\n"
         "p.submit([RawItem.from_bytes(b'{}')])\n"
-        "assert p.result() == [None]\n"  # still serving after both signals
+        "assert p.result()[0] == [None]\n"  # still serving after both signals
         "print(p._proc.pid, flush=True)\n"
         "os.kill(os.getpid(), signal.SIGKILL)\n")
     run = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=60)

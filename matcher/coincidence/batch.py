@@ -15,10 +15,12 @@ import numpy as np
 
 from matcher.errors import InputError
 
-__all__ = ["ReportBatch"]
+__all__ = ["ReportBatch", "REPORT_NUMBERS"]
 
 _FLOAT_COLUMNS = ("ra_deg", "dec_deg", "time", "pos_err_deg", "last_nondetection", "redshift",
                   "redshift_err", "distance_mpc", "distance_err_mpc")
+#: The numeric columns of a report, in the order :meth:`ReportBatch.from_reports` takes them.
+REPORT_NUMBERS = _FLOAT_COLUMNS
 
 
 def _ro(a: np.ndarray) -> np.ndarray:
@@ -127,12 +129,18 @@ class ReportBatch:
                                                            "distance_mpc", "distance_err_mpc")))
 
     @classmethod
-    def from_reports(cls, reports: Sequence) -> "ReportBatch":
-        """Build from :class:`~matcher.streams.messages.TransientReport` messages (already validated)."""
-        # One pass over the reports; numpy turns None into NaN for a float array.
-        cols = np.array([(r.ra_deg, r.dec_deg, r.time, r.pos_err_deg, r.last_nondetection, r.redshift,
-                          r.redshift_err, r.distance_mpc, r.distance_err_mpc) for r in reports],
-                        dtype=np.float64).reshape(-1, 9).T.copy()
+    def from_reports(cls, reports: Sequence, numbers: np.ndarray | None = None) -> "ReportBatch":
+        """Build from :class:`~matcher.streams.messages.TransientReport` messages (already validated).
+
+        ``numbers``: their :data:`REPORT_NUMBERS` as an ``(n, 9)`` float array (None as NaN),
+        when already at hand (the decode process makes it); else read from the reports.
+        """
+        if numbers is None:
+            # One pass over the reports; numpy turns None into NaN for a float array.
+            numbers = np.array([(r.ra_deg, r.dec_deg, r.time, r.pos_err_deg, r.last_nondetection, r.redshift,
+                                 r.redshift_err, r.distance_mpc, r.distance_err_mpc) for r in reports],
+                               dtype=np.float64)
+        cols = np.asarray(numbers, dtype=np.float64).reshape(-1, 9).T.copy()
         return cls.from_arrays(
             [r.transient_id for r in reports], np.array([r.klass for r in reports], dtype=str),
             cols[0], cols[1], cols[2], pos_err_deg=cols[3], last_nondetection=cols[4], redshift=cols[5],

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import os
 import pickle
+from array import array
 import signal
 import struct
 import subprocess
@@ -63,18 +64,29 @@ def entries_of(items: Sequence[RawItem]) -> list[tuple]:
              it.origin.where, it.origin.part, it.origin.offset) for it in items]
 
 
-def decode_fields(codec: Codec, entries: Sequence[tuple]) -> list[tuple | None]:
-    """What the child computes: per entry (:func:`entries_of`), for a transient report without a
+#: A report's numbers in the order of ``matcher.coincidence.batch.REPORT_NUMBERS`` (a test holds
+#: them equal; not imported, so that the child loads no scoring code).
+NUMBERS = ("ra_deg", "dec_deg", "time", "pos_err_deg", "last_nondetection", "redshift", "redshift_err",
+           "distance_mpc", "distance_err_mpc")
+_NAN = float("nan")
+
+
+def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | None], bytes]:
+    """What the child computes, per entry (:func:`entries_of`): for a transient report without a
     localization ``(fields, (key, values, content))`` — the report's attributes, the item's dedup
     key (:func:`~matcher.streams.raw.dedup_key`) and its transients row
-    (:meth:`~matcher.store.Transaction.transient_values`) — or ``None`` for anything else."""
+    (:meth:`~matcher.store.Transaction.transient_values`) — or ``None`` for anything else; and the
+    reports' :data:`NUMBERS` as float64 bytes, a row per entry (NaN for None and other rows)."""
     from matcher.store import Transaction
 
     values = Transaction.transient_values
     out: list[tuple | None] = []
+    numbers = array("d")
+    blank = [_NAN] * len(NUMBERS)
     for data, truncated, size, base_dir, kind, where, part, offset in entries:
         if data is None:  # not sent: decoded in the parent
             out.append(None)
+            numbers.extend(blank)
             continue
         origin = Origin._of("", kind, where, part, offset)  # the source's name is not part of the key
         item = RawItem._read(data, origin, None, 0.0, base_dir, truncated, size)
@@ -82,27 +94,37 @@ def decode_fields(codec: Codec, entries: Sequence[tuple]) -> list[tuple | None]:
             m = codec.decode(item)
         except Exception:  # refused or failed: decoded again in the parent, which names the reason
             out.append(None)
+            numbers.extend(blank)
             continue
         if type(m) is TransientReport and m.localization is None:
             out.append((m.__dict__, (dedup_key(data, origin), *values(m, None))))
+            numbers.extend([_NAN if v is None else v for v in (m.ra_deg, m.dec_deg, m.time, m.pos_err_deg,
+                            m.last_nondetection, m.redshift, m.redshift_err, m.distance_mpc, m.distance_err_mpc)])
         else:
             out.append(None)
-    return out
+            numbers.extend(blank)
+    return out, numbers.tobytes()
 
 
-def rebuild(items: Sequence[RawItem], codec_name: str, results: Sequence[tuple | None], fallback) -> list:
+def rebuild(items: Sequence[RawItem], codec_name: str, decoded: tuple[list, bytes], fallback) -> list:
     """Per item, ``decode_item(item, codec)``: rebuilt from what :func:`decode_fields` gave for it
-    (the same :class:`~matcher.streams.intake.Accepted`, its row attached), else ``fallback(item)``."""
+    (the same :class:`~matcher.streams.intake.Accepted`, with ``prepared`` = (dedup key, values,
+    content, the batch's numbers array, the item's row in it)), else ``fallback(item)``."""
+    import numpy as np
+
     from matcher.streams.intake import Accepted  # here: the child never loads the sky-map code intake needs
 
+    results, raw_numbers = decoded
+    numbers = np.frombuffer(raw_numbers, dtype=np.float64).reshape(-1, len(NUMBERS))
     out = []
-    for item, got in zip(items, results):
+    for row, (item, got) in enumerate(zip(items, results)):
         if got is None:
             out.append(fallback(item))
         else:
             out.append(build_frozen(Accepted, {"item": item, "codec": codec_name,
                                                "message": build_frozen(TransientReport, got[0]),
-                                               "localization": None, "reason": None, "prepared": got[1]}))
+                                               "localization": None, "reason": None,
+                                               "prepared": (*got[1], numbers, row)}))
     return out
 
 
