@@ -3,8 +3,9 @@
 The service loop runs on one core; decoding a report (parse, field checks, the message
 object) is a fifth of its time. :class:`DecodeProcess` runs a codec's ``decode`` on a
 child process for the common case — a transient report without a localization — and
-hands back each such message's fields; the loop rebuilds the same objects from them
-(:func:`rebuild`), which costs a quarter of decoding. Everything else (alerts,
+hands back each such message's fields, with what the loop would compute of it next (the
+dedup key, the transients row, the numbers the scoring reads); the loop rebuilds the same
+objects from them (:func:`rebuild`), which costs a quarter of decoding. Everything else (alerts,
 localizations, anything the codec refuses or fails on) comes back as ``None`` and is
 decoded in this process by :func:`~matcher.streams.intake.decode_item`, as before, so
 rejections and their reasons are exactly those of the in-process path.
@@ -20,11 +21,12 @@ from __future__ import annotations
 
 import os
 import pickle
-from array import array
 import signal
 import struct
 import subprocess
 import sys
+from array import array
+from operator import attrgetter
 from pathlib import Path
 from typing import Any, Sequence
 
@@ -33,8 +35,8 @@ from matcher.streams.codecs.base import Codec
 from matcher.streams.messages import TransientReport
 from matcher.streams.raw import Origin, RawItem, dedup_key
 
-__all__ = ["DecodeProcess", "DecodeProcessGone", "decode_fields", "eligible", "entries_of", "rebuild"]
-
+__all__ = ["DecodeProcess", "DecodeProcessGone", "NUMBERS", "SEND_MAX_BYTES", "decode_fields", "eligible",
+           "entries_of", "rebuild"]
 
 
 class DecodeProcessGone(RuntimeError):
@@ -69,6 +71,7 @@ def entries_of(items: Sequence[RawItem]) -> list[tuple]:
 NUMBERS = ("ra_deg", "dec_deg", "time", "pos_err_deg", "last_nondetection", "redshift", "redshift_err",
            "distance_mpc", "distance_err_mpc")
 _NAN = float("nan")
+_numbers_of = attrgetter(*NUMBERS)
 
 
 def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | None], bytes]:
@@ -98,8 +101,7 @@ def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | 
             continue
         if type(m) is TransientReport and m.localization is None:
             out.append((m.__dict__, (dedup_key(data, origin), *values(m, None))))
-            numbers.extend([_NAN if v is None else v for v in (m.ra_deg, m.dec_deg, m.time, m.pos_err_deg,
-                            m.last_nondetection, m.redshift, m.redshift_err, m.distance_mpc, m.distance_err_mpc)])
+            numbers.extend([_NAN if v is None else v for v in _numbers_of(m)])
         else:
             out.append(None)
             numbers.extend(blank)
