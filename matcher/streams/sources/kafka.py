@@ -143,6 +143,7 @@ class KafkaSourceOptions:
     stop_at_end : bool
         Finish once everything that was on the topics at start is processed (alerts by
         this instance; reports committed by the group): for replays, tests and benchmarks.
+        The group's committed offsets are then read by a third client that joins nothing.
     received_at : str
         ``record`` (the record's timestamp), ``arrival`` (when it was read) or ``message``
         (the message's own ``received_at``, else the record's timestamp).
@@ -231,6 +232,9 @@ class KafkaSource:
         self.max_bytes = int(max_bytes)
         self._alerts = None  # KafkaConsumer, group_id=None, assign()
         self._group = None  # KafkaConsumer, group_id set, subscribe()
+        # KafkaConsumer, group_id set, never subscribes: reads the group's committed offsets for
+        # stop_at_end on a connection of its own (see _check_finished).
+        self._offsets = None
         self._started = False
         self._closed = False
         self._parts: dict[Any, _Partition] = {}
@@ -265,7 +269,8 @@ class KafkaSource:
     def _what(self, doing: str) -> str:
         return f"kafka source {self.name} ({self.options.connection.servers_text}): {doing}"
 
-    def _consumer(self, group_id: str | None):
+    def _consumer(self, group_id: str | None, *, member: bool = True):
+        """A client; with ``group_id`` and ``member`` it is made to join the group (its timing options set)."""
         from kafka import KafkaConsumer
 
         o = self.options
@@ -273,7 +278,7 @@ class KafkaSource:
         kw.update(group_id=group_id, enable_auto_commit=False, auto_offset_reset="earliest",
                   allow_auto_create_topics=False, fetch_max_bytes=o.fetch_max_bytes,
                   max_partition_fetch_bytes=o.max_partition_fetch_bytes, fetch_max_wait_ms=o.fetch_max_wait_ms)
-        if group_id is not None:
+        if group_id is not None and member:
             kw.update(session_timeout_ms=o.session_timeout_ms, heartbeat_interval_ms=o.heartbeat_interval_ms,
                       max_poll_interval_ms=o.max_poll_interval_ms, group_instance_id=o.group_instance_id)
         wait_reachable(o.connection, self._what("connecting"))
@@ -318,6 +323,8 @@ class KafkaSource:
             with transport_errors(self._what("reading end offsets"), o.connection):
                 self._end_at_start = dict(self._alerts.end_offsets(list(self._parts) + report_tps)) \
                     if (self._parts or report_tps) else {}
+            if report_tps:
+                self._offsets = self._consumer(o.group_id, member=False)
         self._started = True
         self._last_partition_check = time.monotonic()
         if not self._catchup_pending():
@@ -725,13 +732,18 @@ class KafkaSource:
             return
         report_ends = {tp: end for tp, end in self._end_at_start.items() if tp.topic in self.options.report_topics}
         if report_ends:
-            if self._group is None:
+            if self._group is None or self._offsets is None:
                 return
             try:
                 for tp, end in report_ends.items():
                     if end == 0:
                         continue
-                    committed = self._group.committed(tp, timeout_ms=self.options.commit_timeout_ms)
+                    # Not through self._group: the broker answers a connection's requests in order and
+                    # holds a JoinGroup until every member has rejoined, so a lookup on the member's own
+                    # coordinator connection waits behind its JoinGroup, outside poll(); kafka-python
+                    # 3.0.12 then drops the join's answer and rejoins (DEVELOPERS.md, "A rebalance that
+                    # never ended").
+                    committed = self._offsets.committed(tp, timeout_ms=self.options.commit_timeout_ms)
                     if committed is None or committed < end:
                         return
             except Exception as exc:
@@ -790,9 +802,13 @@ class KafkaSource:
                 finally:
                     self._group.close(autocommit=False, timeout_ms=5000)
         finally:
-            if self._alerts is not None:
-                self._alerts.close(autocommit=False, timeout_ms=5000)
-            self._group = self._alerts = None
+            try:
+                if self._alerts is not None:
+                    self._alerts.close(autocommit=False, timeout_ms=5000)
+            finally:
+                if self._offsets is not None:
+                    self._offsets.close(autocommit=False, timeout_ms=5000)
+            self._group = self._alerts = self._offsets = None
 
     def __enter__(self):
         return self
