@@ -466,12 +466,20 @@ class Transaction:
         return StoredMessage(mid, "gw_alert", "older", prev)
 
     @staticmethod
+    def transient_row(t: TransientReport, sha: str | None, extra_text: str | None = None) -> tuple:
+        """The transients row's values for report ``t`` (``sha``: its stored localization's);
+        ``extra_text``: the last value (``t.extra`` as canonical JSON), when already known."""
+        if extra_text is None:
+            extra_text = _dumps(t.extra) if t.extra else "{}"
+        return (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
+                t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
+                extra_text)
+
+    @staticmethod
     def transient_values(t: TransientReport, sha: str | None) -> tuple[tuple, str]:
-        """The transients row's values for report ``t`` (``sha``: its stored localization's), and their
-        canonical text (the ``content`` column, which tells a changed report from the same one)."""
-        values = (t.klass, t.ra_deg, t.dec_deg, t.pos_err_deg, t.time, t.time_iso, t.last_nondetection,
-                  t.redshift, t.redshift_err, t.distance_mpc, t.distance_err_mpc, sha, _loc_ref(t.localization),
-                  _dumps(t.extra) if t.extra else "{}")
+        """:meth:`transient_row`, and its canonical text (the ``content`` column, which tells a changed
+        report from the same one)."""
+        values = Transaction.transient_row(t, sha)
         # What "the same report" means: every stored field equal. orjson writes floats in their shortest
         # round-trip form and strings as they are, so equal texts mean equal fields (stores written before
         # held repr() here: a report re-delivered into one is seen as updated once, and re-scored to the
@@ -485,8 +493,9 @@ class Transaction:
         Parameters
         ----------
         entries : sequence of (item, codec, message, localization[, prepared])
-            ``prepared``: ``(dedup key, *transient_values(message, None), ...)`` of a report without a
-            localization, computed already (on the decode process; what follows is not the store's).
+            ``prepared``: ``(dedup key, extra_text, content, ...)`` of a report without a localization,
+            computed already (on the decode process: the dedup key, and of ``transient_values(message,
+            None)`` the last value and the text; what follows is not the store's).
 
         Returns
         -------
@@ -540,7 +549,10 @@ class Transaction:
                 rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
                              item.received_at, now, "transient", tid, item.data))
                 prepared = entry[4] if len(entry) > 4 and sha is None else None
-                values, content = self.transient_values(message, sha) if prepared is None else prepared[1:3]
+                if prepared is None:
+                    values, content = self.transient_values(message, sha)
+                else:  # the row's text and extra as the decode process computed them
+                    values, content = self.transient_row(message, None, prepared[1]), prepared[2]
                 prev = known.get(tid)
                 if prev is None:
                     inserts.append((tid, mid, *values, content, item.received_at))

@@ -59,7 +59,9 @@ def test_rebuilt_items_equal_the_in_process_decode(tmp_path, max_bytes):
         assert repr(got) == repr(want)
         assert list(vars(got.message).items()) == list(vars(want.message).items())
         assert type(got.message.extra) is type(want.message.extra)
-        assert got.prepared[:3] == (item.dedup_key, *Transaction.transient_values(want.message, None))
+        row, content = Transaction.transient_values(want.message, None)
+        assert got.prepared[:3] == (item.dedup_key, row[-1], content)
+        assert Transaction.transient_row(got.message, None, got.prepared[1]) == row
         rebuilt += 1
     assert rebuilt > 500  # the usual lines do go through the child's path
     # The numbers array, row for row, against the batch built from the reports themselves.

@@ -19,6 +19,7 @@ SIGKILL leaves nothing behind.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import pickle
 import signal
@@ -72,14 +73,17 @@ NUMBERS = ("ra_deg", "dec_deg", "time", "pos_err_deg", "last_nondetection", "red
            "distance_mpc", "distance_err_mpc")
 _NAN = float("nan")
 _numbers_of = attrgetter(*NUMBERS)
+_FIELDS = tuple(f.name for f in dataclasses.fields(TransientReport))  # sent as a tuple: a third of a dict's cost
+_fields_of = attrgetter(*_FIELDS)
 
 
 def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | None], bytes]:
     """What the child computes, per entry (:func:`entries_of`): for a transient report without a
-    localization ``(fields, (key, values, content))`` — the report's attributes, the item's dedup
-    key (:func:`~matcher.streams.raw.dedup_key`) and its transients row
-    (:meth:`~matcher.store.Transaction.transient_values`) — or ``None`` for anything else; and the
-    reports' :data:`NUMBERS` as float64 bytes, a row per entry (NaN for None and other rows)."""
+    localization ``(attributes, key, extra_text, content)`` — the report's attributes in field
+    order, the item's dedup key (:func:`~matcher.streams.raw.dedup_key`), and of its transients
+    row (:meth:`~matcher.store.Transaction.transient_values`) the last value and the text — or
+    ``None`` for anything else; and the reports' :data:`NUMBERS` as float64 bytes, a row per
+    entry (NaN for None and other rows)."""
     from matcher.store import Transaction
 
     values = Transaction.transient_values
@@ -100,7 +104,8 @@ def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | 
             numbers.extend(blank)
             continue
         if type(m) is TransientReport and m.localization is None:
-            out.append((m.__dict__, (dedup_key(data, origin), *values(m, None))))
+            row, content = values(m, None)
+            out.append((_fields_of(m), dedup_key(data, origin), row[-1], content))
             numbers.extend([_NAN if v is None else v for v in _numbers_of(m)])
         else:
             out.append(None)
@@ -110,8 +115,8 @@ def decode_fields(codec: Codec, entries: Sequence[tuple]) -> tuple[list[tuple | 
 
 def rebuild(items: Sequence[RawItem], codec_name: str, decoded: tuple[list, bytes], fallback) -> list:
     """Per item, ``decode_item(item, codec)``: rebuilt from what :func:`decode_fields` gave for it
-    (the same :class:`~matcher.streams.intake.Accepted`, with ``prepared`` = (dedup key, values,
-    content, the batch's numbers array, the item's row in it)), else ``fallback(item)``."""
+    (the same :class:`~matcher.streams.intake.Accepted`, with ``prepared`` = (dedup key,
+    extra_text, content, the batch's numbers array, the item's row in it)), else ``fallback(item)``."""
     import numpy as np
 
     from matcher.streams.intake import Accepted  # here: the child never loads the sky-map code intake needs
@@ -124,9 +129,9 @@ def rebuild(items: Sequence[RawItem], codec_name: str, decoded: tuple[list, byte
             out.append(fallback(item))
         else:
             out.append(build_frozen(Accepted, {"item": item, "codec": codec_name,
-                                               "message": build_frozen(TransientReport, got[0]),
+                                               "message": build_frozen(TransientReport, dict(zip(_FIELDS, got[0]))),
                                                "localization": None, "reason": None,
-                                               "prepared": (*got[1], numbers, row)}))
+                                               "prepared": (got[1], got[2], got[3], numbers, row)}))
     return out
 
 

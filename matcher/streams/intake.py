@@ -27,9 +27,10 @@ __all__ = ["Accepted", "Rejected", "Decoded", "decode_item", "record", "record_b
 class Accepted:
     """A valid message, with its loaded localization when it has one.
 
-    ``prepared``: for a report decoded on the decode process, ``(dedup key, values, content,
-    numbers, row)`` — the item's :func:`~matcher.streams.raw.dedup_key`, the report's transients
-    row as :meth:`matcher.store.Transaction.transient_values` gives it, and its numbers as row
+    ``prepared``: for a report decoded on the decode process, ``(dedup key, extra_text, content,
+    numbers, row)`` — the item's :func:`~matcher.streams.raw.dedup_key`, of the report's
+    transients row as :meth:`matcher.store.Transaction.transient_values` gives it the last value
+    and the text, and its numbers as row
     ``row`` of the batch's ``numbers`` array (``REPORT_NUMBERS`` of
     :mod:`matcher.coincidence.batch`) — computed there (not part of the value: equality and
     repr ignore it).
