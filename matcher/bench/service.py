@@ -19,6 +19,7 @@ are not built (that per-map set-up is the engine's and is measured by ``bench co
 from __future__ import annotations
 
 import json
+import resource
 import tempfile
 import time
 from pathlib import Path
@@ -87,6 +88,7 @@ def _service(path: Path, folder: Path, batch: int, profile: str | None):
     store = folder / "service.sqlite"
     _fresh(store)
     (folder / "matches.jsonl").unlink(missing_ok=True)
+    cpu = (time.thread_time(), time.process_time(), resource.getrusage(resource.RUSAGE_CHILDREN))
     t = time.perf_counter()
     svc = Service(cfg, sources=[ArchiveSource("bench", path)], sinks=[JsonlSink("bench", folder / "matches.jsonl")],
                   store_path=store)
@@ -98,6 +100,9 @@ def _service(path: Path, folder: Path, batch: int, profile: str | None):
     svc.run(until_finished=True)
     svc.close()
     elapsed = time.perf_counter() - t
+    ru = resource.getrusage(resource.RUSAGE_CHILDREN)  # the decode process, reaped by close()
+    cpu = {"loop thread": time.thread_time() - cpu[0], "this process": time.process_time() - cpu[1],
+                             "decode process": ru.ru_utime + ru.ru_stime - cpu[2].ru_utime - cpu[2].ru_stime}
     if profile:
         prof.disable()
         prof.dump_stats(profile)
@@ -105,7 +110,7 @@ def _service(path: Path, folder: Path, batch: int, profile: str | None):
 
     with Store(store) as st:
         counts = st.counts()
-    return elapsed, svc.stats, counts
+    return elapsed, svc.stats, counts, cpu
 
 
 def run(args) -> int:
@@ -131,13 +136,14 @@ def run(args) -> int:
         took, _ = _intake(path, store, args.batch)
         print_row("intake only: archive → codec → SQLite (no matching)",
                   f"{took:8.2f} s  {n / took:12,.0f} reports/s  {base / took:6.3f} × baseline")
-        elapsed, stats, counts = _service(path, folder, args.batch, args.profile)
+        elapsed, stats, counts, cpu = _service(path, folder, args.batch, args.profile)
         print_row("service end to end: decode, store, match, publish",
                   f"{elapsed:8.2f} s  {n / elapsed:12,.0f} reports/s  {base / elapsed:6.3f} × baseline")
         sec = stats.seconds
         parts = ", ".join(f"{k} {v:.2f} s" for k, v in sec.items() if v >= 0.005)
         print_row("  time per step", parts)
-        print_row("  set-up before the first batch (store, rebuild)", f"{elapsed - sum(sec.values()):8.2f} s")
+        print_row("  outside the steps (set-up, freeing batches, close)", f"{elapsed - sum(sec.values()):8.2f} s")
+        print_row("  CPU: " + " / ".join(cpu), " / ".join(f"{v:.2f} s" for v in cpu.values()))
         tot = stats.totals
         print_row("  report-event pairs scored / candidates / records written",
                   f"{tot.scored:,} / {tot.candidates:,} / {tot.written:,}")
