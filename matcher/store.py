@@ -506,10 +506,10 @@ class Transaction:
         now = self._now
         out: list[StoredMessage | None] = [None] * len(entries)
         keys, seqs, pairs, tids = [], [], [], set()
-        for entry in entries:
+        given = [entry[4] if len(entry) > 4 else None for entry in entries]  # what the decode process computed
+        for entry, prepared in zip(entries, given):
             item, message = entry[0], entry[2]
             o = item.origin
-            prepared = entry[4] if len(entry) > 4 else None
             key = dedup_key(item.data, o) if prepared is None else prepared[0]  # item.dedup_key
             seq = -1 if o.offset is None else int(o.offset)  # the dedup index's leading column (-1: a whole file)
             keys.append(key)
@@ -548,7 +548,7 @@ class Transaction:
                 tid = message.transient_id
                 rows.append((mid, key, seqs[i], o.source, o.kind, o.where, o.part, o.offset, str(o), codec,
                              item.received_at, now, "transient", tid, item.data))
-                prepared = entry[4] if len(entry) > 4 and sha is None else None
+                prepared = given[i] if sha is None else None
                 if prepared is None:
                     values, content = self.transient_values(message, sha)
                 else:  # the row's text and extra as the decode process computed them

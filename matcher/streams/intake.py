@@ -27,13 +27,12 @@ __all__ = ["Accepted", "Rejected", "Decoded", "decode_item", "record", "record_b
 class Accepted:
     """A valid message, with its loaded localization when it has one.
 
-    ``prepared``: for a report decoded on the decode process, ``(dedup key, extra_text, content,
-    numbers, row)`` — the item's :func:`~matcher.streams.raw.dedup_key`, of the report's
-    transients row as :meth:`matcher.store.Transaction.transient_values` gives it the last value
-    and the text, and its numbers as row
-    ``row`` of the batch's ``numbers`` array (``REPORT_NUMBERS`` of
-    :mod:`matcher.coincidence.batch`) — computed there (not part of the value: equality and
-    repr ignore it).
+    ``prepared``: what the decode process computed for a report it decoded, ``(dedup key,
+    extra_text, content, numbers, row)``: the item's :func:`~matcher.streams.raw.dedup_key`;
+    the last value of the report's transients row and the row's text (as
+    :meth:`matcher.store.Transaction.transient_values` gives them); and the batch's numbers
+    array (``REPORT_NUMBERS`` of :mod:`matcher.coincidence.batch`) with the report's row in it.
+    Not part of the value: equality and repr ignore it.
     """
 
     item: RawItem
