@@ -102,7 +102,7 @@ def _service(path: Path, folder: Path, batch: int, profile: str | None):
     elapsed = time.perf_counter() - t
     ru = resource.getrusage(resource.RUSAGE_CHILDREN)  # the decode process, reaped by close()
     cpu = {"loop thread": time.thread_time() - cpu[0], "this process": time.process_time() - cpu[1],
-                             "decode process": ru.ru_utime + ru.ru_stime - cpu[2].ru_utime - cpu[2].ru_stime}
+           "decode process": ru.ru_utime + ru.ru_stime - cpu[2].ru_utime - cpu[2].ru_stime}
     if profile:
         prof.disable()
         prof.dump_stats(profile)
