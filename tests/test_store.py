@@ -321,3 +321,35 @@ def test_multi_row_inserts_equal_one_statement_per_row():
                 db.executemany("INSERT INTO t VALUES (?,?,?,0)" + tail, rows)
             dbs.append(db.execute("SELECT rowid, * FROM t ORDER BY rowid").fetchall())
         assert dbs[0] == dbs[1], n
+
+
+def test_none_bound_as_nan_is_the_same_null():
+    # The bulk writes bind None as NaN (faster in Python's sqlite3). SQLite's own rule, the
+    # reference here: a NaN bound to any column is stored as NULL, and a NOT NULL column refuses
+    # it as it refuses None. Checked on the linked SQLite, for every column affinity.
+    import math
+
+    from matcher.store import _insert_rows
+
+    db = sqlite3.connect(":memory:")
+    db.execute("CREATE TABLE t (r REAL, s TEXT, i INTEGER, b BLOB, a)")
+    db.execute("INSERT INTO t VALUES (?,?,?,?,?)", (math.nan,) * 5)
+    assert db.execute("SELECT typeof(r), typeof(s), typeof(i), typeof(b), typeof(a) FROM t").fetchone() == (
+        "null",) * 5
+    assert db.execute("SELECT * FROM t").fetchone() == (None,) * 5
+    db.execute("CREATE TABLE nn (x REAL NOT NULL)")
+    for value in (None, math.nan):
+        with pytest.raises(sqlite3.IntegrityError, match="NOT NULL"):
+            db.execute("INSERT INTO nn VALUES (?)", (value,))
+    # _insert_rows with None among other values: the table equals plain executemany's.
+    rows = [(i, None if i % 3 else f"s{i}", None, b"\x00\xff" if i % 2 else None, 0.5 * i) for i in range(120)]
+    for big in (False, True):
+        db.execute("CREATE TABLE u (a INTEGER, b TEXT, c REAL, d BLOB, e REAL)")
+        db.execute("CREATE TABLE ref (a INTEGER, b TEXT, c REAL, d BLOB, e REAL)")
+        _insert_rows(db, "INSERT INTO u VALUES", "(?,?,?,?,?)", rows, big=big)
+        db.executemany("INSERT INTO ref VALUES (?,?,?,?,?)", rows)
+        got = db.execute("SELECT *, typeof(b), typeof(c), typeof(d) FROM u ORDER BY rowid").fetchall()
+        assert got == db.execute("SELECT *, typeof(b), typeof(c), typeof(d) FROM ref ORDER BY rowid").fetchall()
+        assert got[1][:5] == rows[1] and got[0][:5] == rows[0]
+        db.execute("DROP TABLE u")
+        db.execute("DROP TABLE ref")
