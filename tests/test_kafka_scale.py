@@ -88,7 +88,8 @@ def transient_ids(store) -> set:
 def start(cfg_path, log_path):
     env = dict(os.environ, MATCHER_PROGRESS="off")
     log = open(log_path, "ab")
-    proc = subprocess.Popen([sys.executable, "-m", "matcher", "listen", "-c", str(cfg_path), "--until-done"],
+    proc = subprocess.Popen([sys.executable, "-m", "matcher", "listen", "-c", str(cfg_path), "--until-done",
+                             "--log-level", "info"],
                             stdout=log, stderr=subprocess.STDOUT, env=env)
     log.close()
     return proc
@@ -158,6 +159,9 @@ def test_three_instances_one_killed_equal_the_single_instance_run(kafka_broker, 
                 proc.kill()
                 proc.wait(30)
     timings["three instances, one killed and restarted"] = time.monotonic() - t
+    # Each instance's log (--log-level info) says which report partitions it was given.
+    for name in "ac":
+        assert "INFO matcher.kafka: kafka source kafka: partitions assigned:" in (tmp_path / f"{name}.log").read_text()
     print("timings (s):", {k: round(v, 1) for k, v in timings.items()})
 
     stores = {name: Store(tmp_path / f"state-{name}" / "matcher.sqlite") for name in "abc"}

@@ -64,3 +64,32 @@ def test_dashboard_shows_events_candidates_and_counts(tmp_path):
     assert "EV-A" in text and "active events" in text and "best candidates" in text
     assert "quarantined 3" in text and "P_assoc" in text
     assert "EV-B" not in text.split("best candidates")[0]  # withdrawn: no longer active
+
+
+def test_log_level_shows_the_matchers_records_on_stderr(capsys):
+    import logging
+
+    from matcher.commands.listen import log_to_stderr
+
+    with log_to_stderr("info"):
+        logging.getLogger("matcher.kafka").info("partitions assigned: %s", "t-0")
+        logging.getLogger("matcher.kafka").debug("not at info")
+        logging.getLogger("kafka.client").info("the library's own info")
+    logging.getLogger("matcher.kafka").info("after the block")
+    err = capsys.readouterr().err
+    assert "INFO matcher.kafka: partitions assigned: t-0" in err
+    assert "not at info" not in err and "the library's own" not in err and "after the block" not in err
+    with log_to_stderr("warning"):
+        logging.getLogger("matcher.store").info("quiet")
+        logging.getLogger("matcher.store").warning("loud")
+    err = capsys.readouterr().err
+    assert "quiet" not in err and "WARNING matcher.store: loud" in err
+    assert not logging.getLogger("matcher").handlers and logging.getLogger("matcher").propagate
+
+
+def test_log_level_is_checked():
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    done = subprocess.run([sys.executable, "-m", "matcher", "listen", "--log-level", "loud"], env=env,
+                          capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2
+    assert "--log-level" in done.stderr and "invalid choice: 'loud'" in done.stderr

@@ -1,4 +1,4 @@
-"""``matcher listen [-c CONFIG] [--dashboard]``: run the service until stopped.
+"""``matcher listen [-c CONFIG] [--dashboard] [--log-level LEVEL]``: run the service until stopped.
 
 Reads every configured source (or those named with ``--source``), publishes to every
 configured sink, and keeps going until SIGINT or SIGTERM: the current batch finishes,
@@ -10,11 +10,15 @@ source only when ``archive.jsonl`` exists).
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import signal
 import sys
 import time
 
 __all__ = ["register", "run"]
+
+LOG_LEVELS = ("warning", "info", "debug")
 
 
 def register(sub) -> None:
@@ -26,7 +30,34 @@ def register(sub) -> None:
     p.add_argument("--source", action="append", metavar="NAME", help="read only this source (repeatable)")
     p.add_argument("--dashboard", action="store_true", help="live terminal view of events, candidates and rates")
     p.add_argument("--until-done", action="store_true", help="stop when every source is finished (archives read)")
+    p.add_argument("--log-level", choices=LOG_LEVELS, default="warning",
+                   help="what the service's own log (the 'matcher' loggers, on stderr) shows: warning (default), "
+                        "info (also Kafka partitions assigned and revoked, catching up at start), or debug")
     p.set_defaults(func=run)
+
+
+@contextlib.contextmanager
+def log_to_stderr(level: str):
+    """The ``matcher`` loggers' records at ``level`` and above on stderr, one line each, while inside.
+
+    Only this program's loggers: the Kafka client library's own records keep Python's default
+    (warnings and errors).
+    """
+    if level not in LOG_LEVELS:
+        raise ValueError(f"log level must be one of {', '.join(LOG_LEVELS)}, got {level!r}")
+    logger = logging.getLogger("matcher")
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    before = logger.level, logger.propagate
+    logger.addHandler(handler)
+    logger.setLevel(getattr(logging, level.upper()))
+    logger.propagate = False  # once here, not again through a handler the root logger may have
+    try:
+        yield
+    finally:
+        logger.removeHandler(handler)
+        logger.setLevel(before[0])
+        logger.propagate = before[1]
 
 
 def _sources(config, names, embedded: bool):
@@ -48,6 +79,11 @@ def _sources(config, names, embedded: bool):
 
 
 def run(args) -> int:
+    with log_to_stderr(getattr(args, "log_level", "warning")):
+        return _run(args)
+
+
+def _run(args) -> int:
     from matcher.config import load_config
     from matcher.replay import default_config
     from matcher.service import Service
