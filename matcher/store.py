@@ -350,8 +350,8 @@ def _nulls_as_nan(rows: Sequence[Sequence]) -> list[tuple]:
     SQLite stores a NaN bound to any column as NULL (a NOT NULL column refuses it just as it
     refuses None; the store's tests hold this). Python's sqlite3 binds ``None`` through its
     adapter lookup, ~1.0 µs a value against ~0.25 µs for a float, holding Python's lock
-    (measured here with plain ``executemany``); the writer thread's rows carry ~8 such values a
-    report, and the loop waits for that lock.
+    (measured here with plain ``executemany``); a report's bulk rows carry ~8 such values, and
+    the loop waits for that lock while the writer thread binds them.
     """
     nan = _NAN
     return [tuple([nan if v is None else v for v in r]) if None in r else r for r in rows]

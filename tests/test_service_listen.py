@@ -85,6 +85,15 @@ def test_log_level_shows_the_matchers_records_on_stderr(capsys):
     err = capsys.readouterr().err
     assert "quiet" not in err and "WARNING matcher.store: loud" in err
     assert not logging.getLogger("matcher").handlers and logging.getLogger("matcher").propagate
+    # Written to sys.stderr as it is at each record (the dashboard's live view swaps it).
+    swapped = io.StringIO()
+    with log_to_stderr("info"):
+        real, sys.stderr = sys.stderr, swapped
+        try:
+            logging.getLogger("matcher.kafka").info("while the view runs")
+        finally:
+            sys.stderr = real
+    assert "while the view runs" in swapped.getvalue() and "while the view runs" not in capsys.readouterr().err
 
 
 def test_log_level_is_checked():

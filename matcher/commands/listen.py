@@ -36,6 +36,19 @@ def register(sub) -> None:
     p.set_defaults(func=run)
 
 
+class _CurrentStderr(logging.StreamHandler):
+    """A stream handler writing to whatever ``sys.stderr`` is at each record: the dashboard's live
+    view replaces it while it runs, and prints such lines above the view instead of through it."""
+
+    @property
+    def stream(self):
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value) -> None:  # StreamHandler.__init__ sets it; the property decides
+        pass
+
+
 @contextlib.contextmanager
 def log_to_stderr(level: str):
     """The ``matcher`` loggers' records at ``level`` and above on stderr, one line each, while inside.
@@ -46,7 +59,7 @@ def log_to_stderr(level: str):
     if level not in LOG_LEVELS:
         raise ValueError(f"log level must be one of {', '.join(LOG_LEVELS)}, got {level!r}")
     logger = logging.getLogger("matcher")
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _CurrentStderr()
     handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
     before = logger.level, logger.propagate
     logger.addHandler(handler)
